@@ -1,0 +1,13 @@
+"""The one exception type that the command line turns into a one-line message and exit code 2."""
+
+from __future__ import annotations
+
+__all__ = ["TripletkitError"]
+
+
+class TripletkitError(ValueError):
+    """Bad input: the message says what is wrong, where, and what to do.
+
+    The CLI prints ``error: <message>`` on one line and exits with code 2. The message must be a
+    single line (no newline characters).
+    """

@@ -1,0 +1,80 @@
+"""Atomic output: write to a temporary sibling, then rename into place.
+
+An interrupted run leaves no half-written output and no temporary file; an existing output is
+never replaced unless ``force`` is set. Used by every writer in the package.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+from ._errors import TripletkitError
+
+__all__ = ["atomic_path", "check_output"]
+
+
+def check_output(path, force=False):
+    """Check that ``path`` can be written: parent folder exists and is writable, no clobbering."""
+    path = Path(path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.exists():
+        raise TripletkitError(f"output folder {str(parent)!r} does not exist; create it first")
+    if not parent.is_dir():
+        raise TripletkitError(f"output parent {str(parent)!r} is not a folder")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise TripletkitError(f"output folder {str(parent)!r} is not writable")
+    if path.exists() and not force:
+        raise TripletkitError(f"output {str(path)!r} already exists; pass --force (force=True) to replace it")
+    return path
+
+
+@contextlib.contextmanager
+def atomic_path(path, force=False, directory=False):
+    """Yield a temporary path beside ``path``; on success rename it to ``path``.
+
+    Parameters
+    ----------
+    path : str or Path
+        Final output location (a file, or a folder when ``directory`` is true).
+    force : bool, default False
+        Replace an existing output.
+    directory : bool, default False
+        Yield a fresh empty temporary folder instead of a file name.
+
+    On any exception (including KeyboardInterrupt) the temporary output is removed and the
+    previous output, if any, is left untouched.
+    """
+    path = check_output(path, force=force)
+    parent = path.parent if str(path.parent) else Path(".")
+    prefix = f".{path.name}.tmp-"
+    if directory:
+        tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
+    else:
+        fd, name = tempfile.mkstemp(prefix=prefix, dir=parent)
+        os.close(fd)
+        tmp = Path(name)
+    try:
+        yield tmp
+        if path.exists():
+            if path.is_dir() and not path.is_symlink():
+                # Move the old folder aside first so the swap is as short as possible.
+                old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old-", dir=parent))
+                old.rmdir()
+                path.rename(old)
+                os.replace(tmp, path)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                os.replace(tmp, path)
+        else:
+            os.replace(tmp, path)
+    except BaseException:
+        if tmp.is_dir():
+            shutil.rmtree(tmp, ignore_errors=True)
+        else:
+            with contextlib.suppress(FileNotFoundError):
+                tmp.unlink()
+        raise

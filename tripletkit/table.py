@@ -1,0 +1,454 @@
+"""Embedding tables: read, validate and normalise Parquet; write Parquet atomically.
+
+The contract (see the README): columns ``id`` (int64 or string, unique), ``label`` (int64 or
+string, no nulls), ``embedding`` (``fixed_size_list<float32>[d]`` preferred, or a uniform
+``list<float32|float64>``), optional ``group``; any other column is kept as metadata.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+
+from ._errors import TripletkitError
+from ._io import atomic_path
+
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "check"]
+
+#: Norms within this distance of 1 count as "already unit length".
+UNIT_NORM_TOLERANCE = 1e-3
+#: Rows processed at once in the finiteness / norm pass (bounds the temporary memory).
+_ROW_BLOCK = 65536
+
+
+def _first(ids, mask, k=5):
+    """The first ``k`` ids where ``mask`` holds, formatted for a message."""
+    pos = np.flatnonzero(mask)[:k]
+    return ", ".join(repr(_py(ids[p])) for p in pos)
+
+
+def _py(v):
+    return v.item() if isinstance(v, np.generic) else v
+
+
+@dataclass(frozen=True, eq=False)
+class EmbeddingTable:
+    """A validated, L2-normalised embedding table held in memory.
+
+    Attributes
+    ----------
+    ids : ndarray of shape (n,)
+        Row ids, int64 or object (str).
+    labels : ndarray of int64, shape (n,)
+        Dense identity codes 0..k-1; ``label_values[labels]`` gives the original labels.
+    label_values : ndarray of shape (k,)
+        Sorted unique original labels.
+    embeddings : ndarray of float32, shape (n, d), C-contiguous
+        Unit-normalised rows.
+    groups : ndarray of shape (n,) or None
+        Optional subgroup of each row (for differential error rates).
+    unit_norm : bool
+        Whether every input row already had unit length (within 1e-3).
+    dropped : int
+        Rows dropped as invalid (NaN/Inf/zero norm) when ``drop_invalid`` was set.
+    source : str or None
+        Where the table was read from.
+    metadata : pyarrow.Table or None
+        Other columns of the input, row-aligned with ``ids``.
+    """
+
+    ids: np.ndarray
+    labels: np.ndarray
+    label_values: np.ndarray
+    embeddings: np.ndarray
+    groups: np.ndarray | None = None
+    unit_norm: bool = True
+    dropped: int = 0
+    source: str | None = None
+    metadata: pa.Table | None = None
+    _fingerprint: list = field(default_factory=list, repr=False)
+
+    # -- construction -------------------------------------------------------------------------
+    @classmethod
+    def read(cls, path, *, id_column="id", label_column="label", embedding_column="embedding",
+             group_column="group", drop_invalid=False):
+        """Read a Parquet file or a folder of Parquet files.
+
+        Parameters
+        ----------
+        path : str or Path
+            A ``.parquet`` file or a folder read as one ``pyarrow.dataset``.
+        id_column, label_column, embedding_column, group_column : str
+            Column names; ``group_column`` is optional in the file.
+        drop_invalid : bool, default False
+            Drop rows with NaN/Inf values or zero norm (counted in ``dropped``) instead of failing.
+        """
+        table = _read_arrow(path)
+        return cls.from_arrow(table, id_column=id_column, label_column=label_column,
+                              embedding_column=embedding_column, group_column=group_column,
+                              drop_invalid=drop_invalid, source=str(path))
+
+    @classmethod
+    def from_arrow(cls, table, *, id_column="id", label_column="label", embedding_column="embedding",
+                   group_column="group", drop_invalid=False, source=None):
+        """Validate an in-memory ``pyarrow.Table`` that follows the table contract."""
+        where = f" in {source}" if source else ""
+        names = table.column_names
+        for role, col in (("id", id_column), ("label", label_column), ("embedding", embedding_column)):
+            if col not in names:
+                raise TripletkitError(
+                    f"{role} column {col!r} is missing{where} (columns: {', '.join(names) or 'none'}); "
+                    f"name it with --{role}-column"
+                )
+        if table.num_rows == 0:
+            raise TripletkitError(f"table{where} has no rows")
+        ids = _key_column(table.column(id_column), id_column, "id", where)
+        if len(pc.unique(table.column(id_column))) != table.num_rows:
+            dup = _first_duplicate(ids)
+            raise TripletkitError(f"id column {id_column!r}{where} has duplicate ids (first: {dup!r}); ids must be unique")
+        labels = _key_column(table.column(label_column), label_column, "label", where)
+        emb = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
+        groups = None
+        if group_column and group_column in names:
+            groups = table.column(group_column).to_numpy(zero_copy_only=False)
+        others = [c for c in names if c not in (id_column, label_column, embedding_column, group_column)]
+        metadata = table.select(others) if others else None
+        return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where)
+
+    @classmethod
+    def from_arrays(cls, ids, labels, embeddings, groups=None, *, drop_invalid=False):
+        """Build a table from in-memory arrays (ids (n,), labels (n,), embeddings (n, d))."""
+        emb = np.asarray(embeddings)
+        if emb.ndim != 2:
+            raise TripletkitError(f"embeddings must be a 2-D array (rows x dimension), got shape {emb.shape}")
+        if emb.shape[0] == 0:
+            raise TripletkitError("embeddings have no rows")
+        if emb.shape[1] == 0:
+            raise TripletkitError("embeddings have dimension 0; every row needs at least one value")
+        if not np.issubdtype(emb.dtype, np.number):
+            raise TripletkitError(f"embeddings must hold real numbers, got dtype {emb.dtype}")
+        emb = np.ascontiguousarray(emb, dtype=np.float32)
+        ids = np.asarray(ids)
+        labels = np.asarray(labels)
+        for name, arr in (("ids", ids), ("labels", labels)):
+            if arr.ndim != 1 or arr.shape[0] != emb.shape[0]:
+                raise TripletkitError(
+                    f"{name} must be 1-D with one entry per embedding row ({emb.shape[0]}), got shape {arr.shape}"
+                )
+            if arr.dtype == object and any(v is None for v in arr):
+                raise TripletkitError(f"{name} contain null values; every row needs one")
+            if np.issubdtype(arr.dtype, np.floating):
+                raise TripletkitError(f"{name} must be integers or strings, got dtype {arr.dtype}")
+        if ids.dtype.kind in "US":
+            ids = ids.astype(object)
+        if labels.dtype.kind in "US":
+            labels = labels.astype(object)
+        if ids.dtype != object:
+            ids = ids.astype(np.int64)
+        uniq, counts = np.unique(ids, return_counts=True)
+        if uniq.shape[0] != ids.shape[0]:
+            raise TripletkitError(f"ids have duplicates (first: {_py(uniq[np.argmax(counts > 1)])!r}); ids must be unique")
+        if groups is not None:
+            groups = np.asarray(groups)
+            if groups.shape != ids.shape:
+                raise TripletkitError(f"groups must have one entry per row ({ids.shape[0]}), got shape {groups.shape}")
+        return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "")
+
+    @classmethod
+    def _build(cls, ids, labels, emb, groups, drop_invalid, source, metadata, where):
+        n = emb.shape[0]
+        bad_finite = np.zeros(n, dtype=bool)
+        sq = np.empty(n, dtype=np.float64)
+        for s in range(0, n, _ROW_BLOCK):
+            blk = emb[s:s + _ROW_BLOCK]
+            bad_finite[s:s + _ROW_BLOCK] = ~np.isfinite(blk).all(axis=1)
+            with np.errstate(over="ignore", invalid="ignore"):
+                sq[s:s + _ROW_BLOCK] = np.einsum("ij,ij->i", blk, blk, dtype=np.float64)
+        bad_zero = (~bad_finite) & (sq == 0)
+        bad = bad_finite | bad_zero
+        dropped = 0
+        if bad.any():
+            if not drop_invalid:
+                parts = []
+                if bad_finite.any():
+                    parts.append(f"{int(bad_finite.sum())} rows with NaN/Inf (first ids: {_first(ids, bad_finite)})")
+                if bad_zero.any():
+                    parts.append(f"{int(bad_zero.sum())} zero-norm rows (first ids: {_first(ids, bad_zero)})")
+                raise TripletkitError(
+                    f"embeddings{where} have " + " and ".join(parts) + "; fix them or pass --drop-invalid"
+                )
+            keep = ~bad
+            dropped = int(bad.sum())
+            if dropped == n:
+                raise TripletkitError(f"every row of the table{where} is invalid (NaN/Inf or zero norm)")
+            ids, labels, emb, sq = ids[keep], labels[keep], emb[keep], sq[keep]
+            groups = groups[keep] if groups is not None else None
+            metadata = metadata.filter(pa.array(keep)) if metadata is not None else None
+        norms = np.sqrt(sq)
+        unit = bool(np.all(np.abs(norms - 1.0) <= UNIT_NORM_TOLERANCE))
+        out = np.empty(emb.shape, dtype=np.float32)
+        for s in range(0, emb.shape[0], _ROW_BLOCK):
+            np.divide(emb[s:s + _ROW_BLOCK], norms[s:s + _ROW_BLOCK, None], out=out[s:s + _ROW_BLOCK],
+                      casting="unsafe")
+        values, codes = np.unique(labels, return_inverse=True)
+        return cls(ids=ids, labels=codes.astype(np.int64).reshape(-1), label_values=values, embeddings=out,
+                   groups=groups, unit_norm=unit, dropped=dropped, source=source, metadata=metadata)
+
+    # -- properties ---------------------------------------------------------------------------
+    @property
+    def n(self):
+        """Number of rows."""
+        return int(self.embeddings.shape[0])
+
+    @property
+    def dim(self):
+        """Embedding dimension."""
+        return int(self.embeddings.shape[1])
+
+    @property
+    def n_identities(self):
+        """Number of distinct labels."""
+        return int(self.label_values.shape[0])
+
+    @property
+    def fingerprint(self):
+        """A BLAKE2b digest of ids, labels and embeddings (hex), to tie outputs to their input."""
+        if not self._fingerprint:
+            h = hashlib.blake2b(digest_size=16)
+            if self.ids.dtype == object:
+                h.update("\x1f".join(map(str, self.ids)).encode())
+            else:
+                h.update(np.ascontiguousarray(self.ids).tobytes())
+            h.update("\x1f".join(map(str, self.label_values)).encode())
+            h.update(self.labels.tobytes())
+            h.update(self.embeddings.tobytes())
+            self._fingerprint.append(h.hexdigest())
+        return self._fingerprint[0]
+
+    def original_labels(self, rows=None):
+        """Original label values of ``rows`` (all rows by default)."""
+        return self.label_values[self.labels if rows is None else self.labels[rows]]
+
+    def positions(self, ids, what="ids"):
+        """Row positions of ``ids``; an unknown id is an error that names it."""
+        ids = np.asarray(ids)
+        if self.ids.dtype == object:
+            lookup = pa.array(self.ids.tolist(), type=pa.string())
+            query = pa.array([str(v) for v in ids.tolist()], type=pa.string())
+        else:
+            if ids.dtype == object or ids.dtype.kind in "USf":
+                try:
+                    ids = ids.astype(np.int64)
+                except (TypeError, ValueError):
+                    raise TripletkitError(f"{what} are not integers but the table's ids are integers") from None
+            lookup = pa.array(self.ids)
+            query = pa.array(ids.astype(np.int64))
+        pos = pc.index_in(query, value_set=lookup)
+        if pos.null_count:
+            first = query[int(np.flatnonzero(pos.is_null().to_numpy(zero_copy_only=False))[0])].as_py()
+            raise TripletkitError(
+                f"{pos.null_count} {what} are not in the embedding table (first: {first!r})"
+            )
+        return pos.to_numpy(zero_copy_only=False).astype(np.int64)
+
+    def subset(self, rows):
+        """A new table holding ``rows`` (positions), labels re-coded densely."""
+        rows = np.asarray(rows, dtype=np.int64)
+        values, codes = np.unique(self.labels[rows], return_inverse=True)
+        return EmbeddingTable(
+            ids=self.ids[rows], labels=codes.astype(np.int64).reshape(-1), label_values=self.label_values[values],
+            embeddings=np.ascontiguousarray(self.embeddings[rows]),
+            groups=None if self.groups is None else self.groups[rows], unit_norm=self.unit_norm,
+            dropped=self.dropped, source=self.source,
+            metadata=None if self.metadata is None else self.metadata.take(pa.array(rows)),
+        )
+
+    def with_embeddings(self, embeddings):
+        """The same rows with new embeddings (validated and L2-normalised), e.g. a head's output."""
+        return EmbeddingTable.from_arrays(self.ids, self.original_labels(), embeddings, self.groups)
+
+    def identity_sizes(self):
+        """Number of rows per identity code, int64 of shape (k,)."""
+        return np.bincount(self.labels, minlength=self.n_identities).astype(np.int64)
+
+
+# -- reading ----------------------------------------------------------------------------------
+def _read_arrow(path):
+    p = Path(path)
+    if not p.exists():
+        raise TripletkitError(f"embedding table {str(p)!r} does not exist; check the path")
+    try:
+        if p.is_dir():
+            files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
+            if not files:
+                raise TripletkitError(f"folder {str(p)!r} holds no .parquet files")
+            schemas = {}
+            for f in files:
+                schemas.setdefault(pq.read_schema(f).remove_metadata(), f)
+            if len(schemas) > 1:
+                a, b = list(schemas.values())[:2]
+                raise TripletkitError(
+                    f"folder {str(p)!r} mixes Parquet files with different schemas "
+                    f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
+                )
+            table = ds.dataset(files, format="parquet").to_table()
+        else:
+            table = pq.read_table(str(p))
+    except TripletkitError:
+        raise
+    except (pa.ArrowException, OSError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    return table
+
+
+def _key_column(col, name, role, where):
+    t = col.type
+    if pa.types.is_dictionary(t):
+        col = col.cast(t.value_type)
+        t = col.type
+    if col.null_count:
+        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+        raise TripletkitError(
+            f"{role} column {name!r}{where} has {col.null_count} null values (first at row {first}); "
+            f"every row needs an {role}" if role == "id" else
+            f"{role} column {name!r}{where} has {col.null_count} null values (first at row {first}); "
+            f"every row needs a {role}"
+        )
+    if pa.types.is_integer(t):
+        return col.cast(pa.int64()).to_numpy()
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return col.to_numpy(zero_copy_only=False).astype(object)
+    raise TripletkitError(f"{role} column {name!r}{where} has type {t}; expected int64 or string")
+
+
+def _first_duplicate(ids):
+    uniq, counts = np.unique(ids, return_counts=True)
+    return _py(uniq[np.argmax(counts > 1)])
+
+
+def _embedding_matrix(col, name, ids, where):
+    """Convert an embedding column to a float32 (n, d) matrix without a per-row Python loop."""
+    t = col.type
+    arr = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+    if not (pa.types.is_fixed_size_list(t) or pa.types.is_list(t) or pa.types.is_large_list(t)):
+        raise TripletkitError(
+            f"embedding column {name!r}{where} has type {t}; expected fixed_size_list<float32>[d] or list<float32>"
+        )
+    vt = t.value_type
+    if not pa.types.is_floating(vt) or pa.types.is_float16(vt):
+        raise TripletkitError(f"embedding column {name!r}{where} holds {vt} values; expected float32 or float64")
+    if arr.null_count:
+        mask = arr.is_null().to_numpy(zero_copy_only=False)
+        raise TripletkitError(
+            f"embedding column {name!r}{where} has {int(mask.sum())} null rows (first ids: {_first(ids, mask)})"
+        )
+    n = len(arr)
+    if pa.types.is_fixed_size_list(t):
+        d = t.list_size
+    else:
+        lengths = pc.list_value_length(arr).to_numpy(zero_copy_only=False)
+        lo, hi = int(lengths.min()), int(lengths.max())
+        if lo != hi:
+            ragged = lengths != lengths[0]
+            raise TripletkitError(
+                f"embedding column {name!r}{where} has rows of length {int(lengths[0])} and "
+                f"{int(lengths[ragged][0])} (first ragged id: {_first(ids, ragged, 1)}); every row must have the same length"
+            )
+        d = lo
+    if d == 0:
+        raise TripletkitError(f"embedding column {name!r}{where} has rows of length 0")
+    values = arr.flatten()
+    if values.null_count:
+        raise TripletkitError(
+            f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"
+        )
+    flat = values.to_numpy(zero_copy_only=False)
+    if flat.dtype != np.float32:
+        flat = flat.astype(np.float32)
+    return flat.reshape(n, d)
+
+
+def read_table(path, **options):
+    """Read an embedding table; shorthand for :meth:`EmbeddingTable.read`."""
+    return EmbeddingTable.read(path, **options)
+
+
+def as_table(source, **options):
+    """Accept a path, an :class:`EmbeddingTable` or an ``(ids, labels, embeddings)`` tuple."""
+    if isinstance(source, EmbeddingTable):
+        return source
+    if isinstance(source, (str, Path)):
+        return EmbeddingTable.read(source, **options)
+    if isinstance(source, tuple) and len(source) in (3, 4):
+        drop = options.get("drop_invalid", False)
+        return EmbeddingTable.from_arrays(*source, drop_invalid=drop)
+    raise TripletkitError(
+        f"expected a table path, an EmbeddingTable or an (ids, labels, embeddings) tuple, got {type(source).__name__}"
+    )
+
+
+# -- writing ----------------------------------------------------------------------------------
+def _embedding_array(embeddings):
+    emb = np.ascontiguousarray(embeddings, dtype=np.float32)
+    return pa.FixedSizeListArray.from_arrays(pa.array(emb.reshape(-1)), emb.shape[1])
+
+
+def to_arrow(ids, labels, embeddings, groups=None, extra=None, metadata=None):
+    """Build a ``pyarrow.Table`` in the table contract (fixed-size float32 embeddings)."""
+    cols = {"id": pa.array(np.asarray(ids).tolist() if np.asarray(ids).dtype == object else np.asarray(ids)),
+            "label": pa.array(np.asarray(labels).tolist() if np.asarray(labels).dtype == object else np.asarray(labels)),
+            "embedding": _embedding_array(embeddings)}
+    if groups is not None:
+        g = np.asarray(groups)
+        cols["group"] = pa.array(g.tolist() if g.dtype == object else g)
+    table = pa.table(cols)
+    if extra is not None:
+        for name in extra.column_names:
+            table = table.append_column(name, extra.column(name))
+    if metadata:
+        table = table.replace_schema_metadata({str(k): str(v) for k, v in metadata.items()})
+    return table
+
+
+def write_table(path, ids, labels, embeddings, groups=None, *, extra=None, metadata=None, force=False):
+    """Write an embedding table to Parquet atomically; refuses to overwrite unless ``force``."""
+    table = to_arrow(ids, labels, embeddings, groups, extra, metadata)
+    with atomic_path(path, force=force) as tmp:
+        pq.write_table(table, str(tmp), compression="zstd")
+    return Path(path)
+
+
+# -- the check command ------------------------------------------------------------------------
+def check(source, **options):
+    """Describe an embedding table: size, identities, singletons, invalid rows, unit norm.
+
+    Invalid rows (NaN/Inf/zero norm) are counted, not fatal, so that the check can report them.
+
+    Returns
+    -------
+    dict
+        Keys ``rows``, ``dim``, ``identities``, ``samples_per_identity`` (min/median/max),
+        ``singletons``, ``invalid_rows``, ``unit_norm``, ``groups`` (count or None).
+    """
+    options = dict(options)
+    options["drop_invalid"] = True
+    table = as_table(source, **options)
+    sizes = table.identity_sizes()
+    return {
+        "rows": table.n,
+        "dim": table.dim,
+        "identities": table.n_identities,
+        "samples_per_identity": {"min": int(sizes.min()), "median": float(np.median(sizes)), "max": int(sizes.max())},
+        "singletons": int((sizes == 1).sum()),
+        "invalid_rows": int(table.dropped),
+        "unit_norm": bool(table.unit_norm),
+        "groups": None if table.groups is None else int(len(set(table.groups.tolist()))),
+    }
