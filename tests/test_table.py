@@ -1,0 +1,187 @@
+"""Embedding table: reading, conversion, validation errors, normalisation, atomic writing."""
+
+import os
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from tripletkit import TripletkitError
+from tripletkit.table import EmbeddingTable, as_table, check, to_arrow, write_table
+
+
+def _write(path, table):
+    pq.write_table(table, str(path))
+    return path
+
+
+def _arrow(n=6, d=3, rng=None, ids=None, labels=None, emb=None):
+    rng = rng or np.random.default_rng(0)
+    ids = np.arange(n) if ids is None else ids
+    labels = (np.arange(n) % 3) if labels is None else labels
+    emb = rng.normal(size=(n, d)).astype(np.float32) if emb is None else emb
+    return to_arrow(ids, labels, emb)
+
+
+def test_round_trip_fixed_size_list(tmp_path, rng):
+    emb = rng.normal(size=(20, 5)).astype(np.float32)
+    ids = np.array([f"p-{i:03d}" for i in range(20)], dtype=object)
+    labels = np.array([f"seal-{i % 4}" for i in range(20)], dtype=object)
+    write_table(tmp_path / "t.parquet", ids, labels, emb, groups=np.array(["a", "b"] * 10, dtype=object))
+    t = EmbeddingTable.read(tmp_path / "t.parquet")
+    assert t.n == 20 and t.dim == 5 and t.n_identities == 4
+    assert t.embeddings.dtype == np.float32 and t.embeddings.flags.c_contiguous
+    np.testing.assert_allclose(np.linalg.norm(t.embeddings, axis=1), 1.0, atol=1e-6)
+    np.testing.assert_allclose(t.embeddings, emb / np.linalg.norm(emb, axis=1, keepdims=True), rtol=1e-6)
+    assert list(t.original_labels()) == list(labels)
+    assert list(t.groups) == ["a", "b"] * 10
+    assert not t.unit_norm
+
+
+def test_uniform_list_float64_and_folder(tmp_path, rng):
+    emb = rng.normal(size=(8, 4))
+    emb /= np.linalg.norm(emb, axis=1, keepdims=True)
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    for k in range(2):
+        rows = slice(4 * k, 4 * k + 4)
+        tab = pa.table({"id": pa.array(np.arange(8)[rows]), "label": pa.array(np.arange(8)[rows] % 2),
+                        "embedding": pa.array(emb[rows].tolist(), type=pa.list_(pa.float64()))})
+        _write(folder / f"part-{k}.parquet", tab)
+    t = EmbeddingTable.read(folder)
+    assert t.n == 8 and t.dim == 4 and t.unit_norm
+    order = np.argsort(t.ids)
+    np.testing.assert_allclose(t.embeddings[order], emb.astype(np.float32), rtol=1e-6)
+
+
+def test_column_names_overridable_and_metadata_kept(tmp_path, rng):
+    tab = pa.table({"pid": pa.array([1, 2, 3]), "who": pa.array(["x", "x", "y"]),
+                    "vec": pa.FixedSizeListArray.from_arrays(pa.array(rng.normal(size=6).astype(np.float32)), 2),
+                    "site": pa.array(["n", "s", "n"])})
+    _write(tmp_path / "t.parquet", tab)
+    t = EmbeddingTable.read(tmp_path / "t.parquet", id_column="pid", label_column="who", embedding_column="vec")
+    assert t.metadata.column_names == ["site"]
+    assert t.positions([3, 1]).tolist() == [2, 0]
+
+
+def _expect_error(tmp_path, table, match, **kw):
+    path = _write(tmp_path / "bad.parquet", table)
+    with pytest.raises(TripletkitError, match=match):
+        EmbeddingTable.read(path, **kw)
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(TripletkitError, match="does not exist"):
+        EmbeddingTable.read(tmp_path / "nope.parquet")
+
+
+def test_broken_file(tmp_path):
+    path = tmp_path / "broken.parquet"
+    _write(path, _arrow())
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2])
+    with pytest.raises(TripletkitError, match="cannot read .* as Parquet"):
+        EmbeddingTable.read(path)
+
+
+def test_missing_column(tmp_path):
+    _expect_error(tmp_path, _arrow().drop_columns(["label"]), "label column 'label' is missing")
+
+
+def test_wrong_column_types(tmp_path):
+    t = _arrow()
+    _expect_error(tmp_path, t.set_column(1, "label", pa.array(np.linspace(0, 1, 6))), "label column .* has type double")
+    _expect_error(tmp_path, t.set_column(2, "embedding", pa.array(np.ones(6))), "embedding column .* has type double")
+    bad = pa.array([[1, 2, 3]] * 6, type=pa.list_(pa.int32()))
+    _expect_error(tmp_path, t.set_column(2, "embedding", bad), "holds int32 values")
+
+
+def test_ragged_lengths(tmp_path):
+    t = _arrow()
+    ragged = pa.array([[1.0, 2.0, 3.0]] * 5 + [[1.0, 2.0]], type=pa.list_(pa.float32()))
+    _expect_error(tmp_path, t.set_column(2, "embedding", ragged),
+                  r"rows of length 3 and 2 \(first ragged id: 5\)")
+
+
+def test_duplicate_and_null_ids_and_labels(tmp_path):
+    t = _arrow()
+    _expect_error(tmp_path, t.set_column(0, "id", pa.array([0, 1, 2, 3, 3, 5])), r"duplicate ids \(first: 3\)")
+    _expect_error(tmp_path, t.set_column(0, "id", pa.array([0, 1, None, 3, 4, 5])), "id column 'id' .*has 1 null values \\(first at row 2\\)")
+    _expect_error(tmp_path, t.set_column(1, "label", pa.array(["a", None, "b", "a", "b", "a"])),
+                  "label column 'label' .*has 1 null values")
+
+
+def test_nan_inf_and_zero_rows(tmp_path):
+    emb = np.ones((6, 3), dtype=np.float32)
+    emb[1, 0] = np.nan
+    emb[4, 2] = np.inf
+    emb[5] = 0
+    t = _arrow(emb=emb)
+    _expect_error(tmp_path, t, r"2 rows with NaN/Inf \(first ids: 1, 4\) and 1 zero-norm rows \(first ids: 5\)")
+    path = _write(tmp_path / "ok.parquet", t)
+    kept = EmbeddingTable.read(path, drop_invalid=True)
+    assert kept.n == 3 and kept.dropped == 3 and kept.ids.tolist() == [0, 2, 3]
+
+
+def test_empty_table(tmp_path):
+    _expect_error(tmp_path, _arrow().slice(0, 0), "has no rows")
+
+
+def test_mixed_schema_folder(tmp_path, rng):
+    folder = tmp_path / "mixed"
+    folder.mkdir()
+    _write(folder / "a.parquet", _arrow(d=3))
+    _write(folder / "b.parquet", _arrow(d=4, ids=np.arange(6, 12)))
+    with pytest.raises(TripletkitError, match="different schemas"):
+        EmbeddingTable.read(folder)
+
+
+def test_from_arrays_validation(rng):
+    emb = rng.normal(size=(4, 2))
+    with pytest.raises(TripletkitError, match="duplicates"):
+        EmbeddingTable.from_arrays([1, 1, 2, 3], [0, 0, 1, 1], emb)
+    with pytest.raises(TripletkitError, match="one entry per embedding row"):
+        EmbeddingTable.from_arrays([1, 2, 3], [0, 0, 1, 1], emb)
+    with pytest.raises(TripletkitError, match="2-D"):
+        EmbeddingTable.from_arrays([1], [0], np.ones(3))
+    t = as_table((np.arange(4), np.array(["a", "a", "b", "b"]), emb))
+    assert t.n_identities == 2 and t.labels.tolist() == [0, 0, 1, 1]
+
+
+def test_invariance_of_normalised_rows_to_scale(rng):
+    # Scaling a row by a positive constant must not change its unit vector.
+    emb = rng.normal(size=(5, 3))
+    a = EmbeddingTable.from_arrays(np.arange(5), np.zeros(5, int), emb)
+    b = EmbeddingTable.from_arrays(np.arange(5), np.zeros(5, int), emb * rng.uniform(0.1, 10, size=(5, 1)))
+    np.testing.assert_allclose(a.embeddings, b.embeddings, rtol=1e-6)
+    assert a.fingerprint == EmbeddingTable.from_arrays(np.arange(5), np.zeros(5, int), emb).fingerprint
+
+
+def test_write_refuses_overwrite_and_is_atomic(tmp_path, rng):
+    path = tmp_path / "out.parquet"
+    write_table(path, np.arange(3), np.arange(3), rng.normal(size=(3, 2)))
+    before = path.read_bytes()
+    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+        write_table(path, np.arange(3), np.arange(3), rng.normal(size=(3, 2)))
+    assert path.read_bytes() == before
+    write_table(path, np.arange(4), np.arange(4), rng.normal(size=(4, 2)), force=True)
+    assert EmbeddingTable.read(path).n == 4
+    assert sorted(os.listdir(tmp_path)) == ["out.parquet"]
+
+
+def test_write_into_missing_folder(tmp_path, rng):
+    with pytest.raises(TripletkitError, match="does not exist; create it first"):
+        write_table(tmp_path / "no" / "out.parquet", np.arange(3), np.arange(3), rng.normal(size=(3, 2)))
+    assert not (tmp_path / "no").exists()
+
+
+def test_check_summary(tmp_path, rng):
+    emb = rng.normal(size=(7, 3)).astype(np.float32)
+    emb[6] = np.nan
+    write_table(tmp_path / "t.parquet", np.arange(7), np.array([0, 0, 0, 1, 1, 2, 2]), emb)
+    out = check(tmp_path / "t.parquet")
+    # Row 6 (label 2) is invalid, so label 2 is left with one sample: a singleton.
+    assert out["rows"] == 6 and out["dim"] == 3 and out["identities"] == 3
+    assert out["singletons"] == 1 and out["invalid_rows"] == 1 and out["unit_norm"] is False
+    assert out["samples_per_identity"] == {"min": 1, "median": 2.0, "max": 3}

@@ -1,0 +1,286 @@
+"""Command line: argument parsing only. Every command calls one public function of the package.
+
+Options of ``mine``, ``score`` and ``sweep`` are generated from the config dataclasses
+(:mod:`tripletkit.config`), so every config key has the option of the same name and the two
+cannot drift apart. A command-line option overrides the config file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import math
+import signal
+import sys
+import typing
+
+from . import __version__
+from ._errors import TripletkitError
+from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
+
+__all__ = ["main", "build_parser"]
+
+
+def _table_options(p):
+    g = p.add_argument_group("table columns")
+    g.add_argument("--id-column", default="id", help="column of row ids (default: id)")
+    g.add_argument("--label-column", default="label", help="column of identity labels (default: label)")
+    g.add_argument("--embedding-column", default="embedding", help="column of vectors (default: embedding)")
+    g.add_argument("--group-column", default="group", help="optional column of subgroups (default: group)")
+    g.add_argument("--drop-invalid", action="store_true",
+                   help="drop rows with NaN/Inf or zero norm instead of failing (the count is reported)")
+
+
+def _table_kwargs(args):
+    return {"id_column": args.id_column, "label_column": args.label_column,
+            "embedding_column": args.embedding_column, "group_column": args.group_column,
+            "drop_invalid": args.drop_invalid}
+
+
+def _config_options(p, cls, title, skip=()):
+    """Add one option per field of config dataclass ``cls``; defaults stay None (= use config)."""
+    g = p.add_argument_group(title)
+    hints = typing.get_type_hints(cls)
+    for f in dataclasses.fields(cls):
+        if f.name in skip:
+            continue
+        tp, _ = _unwrap_optional(hints[f.name])
+        flag = "--" + f.name.replace("_", "-")
+        default = f.default if f.default is not dataclasses.MISSING else None
+        help_text = f"{f.metadata.get('help', '')} (default: {_show(default)})"
+        dest = f"cfg_{cls.__name__}_{f.name}"
+        if tp is bool:
+            g.add_argument(flag, dest=dest, action=argparse.BooleanOptionalAction, default=None, help=help_text)
+        elif typing.get_origin(tp) is tuple:
+            elem = typing.get_args(tp)[0]
+            if dataclasses.is_dataclass(elem):
+                continue
+            g.add_argument(flag, dest=dest, nargs="+", type=_scalar_type(elem), default=None, metavar="V",
+                           help=help_text)
+        else:
+            g.add_argument(flag, dest=dest, type=_scalar_type(tp), default=None, metavar=_metavar(tp),
+                           help=help_text)
+
+
+def _scalar_type(tp):
+    if tp is float:
+        return _float
+    return tp
+
+
+def _float(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
+    return value
+
+
+def _metavar(tp):
+    return {float: "X", int: "N", str: "S"}.get(tp, "V")
+
+
+def _show(value):
+    if isinstance(value, tuple):
+        return " ".join(map(str, value))
+    return "none" if value is None else str(value)
+
+
+def _overrides(args, cls):
+    prefix = f"cfg_{cls.__name__}_"
+    return {k[len(prefix):]: v for k, v in vars(args).items() if k.startswith(prefix) and v is not None}
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (exit code 2), like every other bad input."""
+
+    def error(self, message):
+        self.exit(2, f"error: {self.prog}: {message} (see '{self.prog} --help')\n")
+
+
+def build_parser():
+    """The argument parser of the ``tripletkit`` command."""
+    parser = _Parser(
+        prog="tripletkit",
+        description="Mine triplets, score checkpoints and choose the margin of identity-embedding models.",
+    )
+    parser.add_argument("--version", action="version", version=f"tripletkit {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show a traceback on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    p = sub.add_parser("check", help="describe and validate an embedding table")
+    p.add_argument("table", help="Parquet file or folder of Parquet files")
+    _table_options(p)
+    p.add_argument("--json", action="store_true", help="print a JSON object")
+
+    p = sub.add_parser("loss", help="score a triplet table against an embedding table")
+    p.add_argument("triplets", help="Parquet triplet table (anchor, positive, negative ids)")
+    p.add_argument("table", help="embedding table the ids refer to")
+    p.add_argument("--margin", type=_float, default=0.2, help="margin alpha (default: 0.2)")
+    p.add_argument("--distance", choices=("squared", "euclidean"), default="squared",
+                   help="distance on unit vectors (default: squared)")
+    p.add_argument("--soft", action="store_true", help="soft-margin loss log(1 + exp(d_ap - d_an))")
+    _table_options(p)
+    p.add_argument("--json", action="store_true", help="print a JSON object")
+
+    p = sub.add_parser("mine", help="choose easy, semi-hard and hard triplets for the next epoch")
+    p.add_argument("table", help="Parquet dump of the current training embeddings")
+    p.add_argument("--out", required=True, help="triplet table to write (Parquet)")
+    p.add_argument("--config", help="TOML config; its [mining] section sets the defaults")
+    _config_options(p, MiningConfig, "mining options (also keys of [mining])")
+    _config_options(p, ComputeConfig, "compute options (also keys of [compute])")
+    _table_options(p)
+    _run_options(p)
+
+    p = sub.add_parser("score", help="score a checkpoint's embeddings of held-out identities")
+    p.add_argument("table", help="Parquet table of held-out embeddings")
+    p.add_argument("--out", required=True, help="report folder to write")
+    p.add_argument("--config", help="TOML config; its [evaluation] section sets the defaults")
+    _config_options(p, EvaluationConfig, "evaluation options (also keys of [evaluation])")
+    _config_options(p, ComputeConfig, "compute options (also keys of [compute])")
+    _table_options(p)
+    _run_options(p)
+
+    p = sub.add_parser("sweep", help="compare margins side by side, from a config file")
+    p.add_argument("config", help="TOML config with a [sweep] section")
+    p.add_argument("--out", required=True, help="sweep folder to write")
+    _run_options(p)
+
+    p = sub.add_parser("demo", help="run the loop on the bundled seal-survey demo data")
+    p.add_argument("--out", default="tripletkit-demo", help="folder to write into (default: tripletkit-demo)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+    return parser
+
+
+def _run_options(p):
+    p.add_argument("--force", action="store_true", help="replace existing outputs")
+    p.add_argument("--quiet", action="store_true", help="no progress output on stderr")
+    p.add_argument("--json", action="store_true", help="print the summary as a JSON object")
+
+
+def _load_section(args, name, cls):
+    from .config import load_config, override
+
+    section = getattr(load_config(args.config), name) if args.config else cls()
+    return override(section, **_overrides(args, cls))
+
+
+def _compute(args):
+    from .config import load_config, override
+
+    section = load_config(args.config).compute if getattr(args, "config", None) else ComputeConfig()
+    return override(section, **_overrides(args, ComputeConfig))
+
+
+def _run(args):
+    """Dispatch one parsed command; return the object to print."""
+    if args.command == "check":
+        from .table import check
+
+        return check(args.table, **_table_kwargs(args))
+    if args.command == "loss":
+        from .triplets import triplet_loss_report
+
+        return triplet_loss_report(args.triplets, args.table, margin=args.margin, distance=args.distance,
+                                   soft=args.soft, table_options=_table_kwargs(args))
+    if args.command == "mine":
+        from .mining import mine
+        from .table import EmbeddingTable
+
+        cfg = _load_section(args, "mining", MiningConfig)
+        compute = _compute(args)
+        kwargs = {}
+        if compute.scheduler is not None:
+            kwargs["compute"] = compute
+        table = EmbeddingTable.read(args.table, **_table_kwargs(args))
+        return mine(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet, **kwargs)
+    if args.command == "score":
+        from .evaluate import score
+
+        cfg = _load_section(args, "evaluation", EvaluationConfig)
+        compute = _compute(args)
+        kwargs = {"compute": compute} if compute.scheduler is not None else {}
+        return score(args.table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
+                     table_options=_table_kwargs(args), **kwargs)
+    if args.command == "sweep":
+        from .sweep import sweep
+
+        return sweep(args.config, out=args.out, force=args.force, quiet=args.quiet)
+    if args.command == "demo":
+        from .demo import run_demo
+
+        return run_demo(args.out, force=args.force, quiet=args.quiet)
+    raise AssertionError(args.command)  # argparse guarantees a known command
+
+
+def _plain(obj):
+    """Convert summaries and numpy values to JSON-ready Python objects."""
+    if hasattr(obj, "to_dict"):
+        obj = obj.to_dict()
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if hasattr(obj, "item") and getattr(obj, "ndim", 1) == 0:
+        return obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+def _text(obj, indent=0):
+    lines = []
+    pad = "  " * indent
+    for key, value in obj.items():
+        if isinstance(value, dict):
+            lines.append(f"{pad}{key}:")
+            lines.extend(_text(value, indent + 1))
+        elif isinstance(value, list) and len(value) > 12:
+            lines.append(f"{pad}{key}: [{len(value)} values]")
+        elif isinstance(value, float):
+            lines.append(f"{pad}{key}: {value:.6g}")
+        else:
+            lines.append(f"{pad}{key}: {value}")
+    return lines
+
+
+def _on_sigterm(signum, frame):
+    # Turn SIGTERM into an exception so that atomic outputs clean up their temporary files.
+    raise SystemExit(128 + signum)
+
+
+def main(argv=None):
+    """Entry point of the ``tripletkit`` command; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        result = _plain(_run(args))
+    except TripletkitError as exc:
+        if args.debug:
+            raise
+        print(f"error: {str(exc).splitlines()[0]}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        if args.debug:
+            raise
+        print("interrupted: no output was written", file=sys.stderr)
+        return 130
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    if getattr(args, "json", False):
+        print(json.dumps(result, indent=2, sort_keys=False))
+    elif isinstance(result, dict):
+        print("\n".join(_text(result)))
+    elif result is not None:
+        print(result)
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

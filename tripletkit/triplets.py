@@ -1,0 +1,80 @@
+"""Triplet tables on disk: read one and score it against an embedding table.
+
+The writer lives with the miner (``mining.py``); this module is the reader used by
+``tripletkit loss`` and by anyone who wants to re-score last epoch's triplets on new embeddings.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._errors import TripletkitError
+from .table import as_table
+
+__all__ = ["read_triplets", "triplet_loss_report"]
+
+_ID_COLUMNS = ("anchor", "positive", "negative")
+
+
+def read_triplets(path):
+    """Read the ``anchor``, ``positive`` and ``negative`` id columns of a triplet table.
+
+    Returns
+    -------
+    dict of str -> ndarray
+        One array of ids per column.
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise TripletkitError(f"triplet table {str(p)!r} does not exist; check the path")
+    try:
+        schema = pq.read_schema(str(p))
+        missing = [c for c in _ID_COLUMNS if c not in schema.names]
+        if missing:
+            raise TripletkitError(
+                f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
+            )
+        table = pq.read_table(str(p), columns=list(_ID_COLUMNS))
+    except TripletkitError:
+        raise
+    except (pa.ArrowException, OSError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    out = {}
+    for col in _ID_COLUMNS:
+        c = table.column(col)
+        if c.null_count:
+            raise TripletkitError(f"triplet table {str(p)!r} column {col!r} has {c.null_count} null ids")
+        out[col] = c.to_numpy(zero_copy_only=False)
+    return out
+
+
+def triplet_loss_report(triplets, table, *, margin=0.2, distance="squared", soft=False, table_options=None):
+    """Mean loss, active fraction and regime counts of a triplet table on an embedding table.
+
+    Parameters
+    ----------
+    triplets : str, Path or dict
+        A triplet table path, or a dict with ``anchor``, ``positive``, ``negative`` id arrays.
+    table : str, Path, EmbeddingTable or (ids, labels, embeddings)
+        The embeddings the ids refer to.
+    margin, distance, soft
+        As in :func:`tripletkit.loss.triplet_loss`.
+
+    Returns
+    -------
+    dict
+        Keys ``triplets``, ``mean_loss``, ``active_fraction``, ``regimes``.
+    """
+    from .loss import score_triplets
+
+    trip = read_triplets(triplets) if isinstance(triplets, (str, Path)) else triplets
+    emb = as_table(table, **(table_options or {}))
+    if len(trip["anchor"]) == 0:
+        raise TripletkitError("the triplet table has no rows; there is nothing to score")
+    return score_triplets(emb, np.asarray(trip["anchor"]), np.asarray(trip["positive"]),
+                          np.asarray(trip["negative"]), margin=margin, distance=distance, soft=soft)
