@@ -1,0 +1,685 @@
+"""Triplet losses and their gradients on unit vectors (numpy only, no training framework).
+
+Every function here L2-normalises its raw inputs first and measures distances on the unit sphere:
+
+- ``"squared"`` (default): d(a, b) = ||a - b||^2 = 2 - 2 cos(a, b), in [0, 4];
+- ``"euclidean"``: d(a, b) = ||a - b||, in [0, 2].
+
+A triplet (anchor a, positive p of the same identity, negative n of another identity) has, for a
+margin alpha >= 0,
+
+- the hinge loss ``max(0, d_ap - d_an + alpha)`` (Schroff et al., 2015), or
+- the soft-margin loss ``log(1 + exp(d_ap - d_an))`` (Hermans et al., 2017), which has no margin;
+
+and falls in one of three regimes, with the boundaries stated once here and in DESIGN.md:
+
+- ``hard``: d_an < d_ap
+- ``semi-hard``: d_ap <= d_an < d_ap + alpha
+- ``easy``: d_an >= d_ap + alpha
+
+A triplet is *active* when it violates the margin, ``d_ap - d_an + alpha > 0``, i.e. when it is not
+easy. For the hinge that is exactly "the loss is non-zero"; the soft-margin loss is positive for every
+triplet, so it uses the same margin-based definition to keep active fractions comparable.
+
+Gradients are taken with respect to the raw (pre-normalisation) vectors, through the Jacobian of
+x -> x / ||x||, which is (I - u u^T) / ||x|| with u = x / ||x||. Everything that feeds a gradient
+is computed in float64. At a hinge kink (violation exactly 0), at an exact tie for the hardest
+positive or negative, and at a zero Euclidean distance, the functions return one fixed subgradient
+(documented on each function).
+
+References
+----------
+.. [1] F. Schroff, D. Kalenichenko, J. Philbin, "FaceNet: A Unified Embedding for Face Recognition
+   and Clustering", CVPR 2015 (Sec. 3.1: triplet constraint and hinge loss on the unit
+   hypersphere, squared Euclidean distance; margin alpha = 0.2).
+.. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
+   Re-Identification", arXiv:1703.07737, 2017 (batch-hard and batch-all reductions, the average
+   over non-zero terms, the soft margin log(1 + exp(x))).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ._errors import TripletkitError
+from ._validate import as_codes, as_embeddings, check_same_length
+
+__all__ = [
+    "REGIMES",
+    "DISTANCES",
+    "BatchLoss",
+    "pair_distance",
+    "triplet_loss",
+    "triplet_loss_grad",
+    "regime_codes",
+    "regime_of",
+    "batch_all_loss",
+    "batch_hard_loss",
+    "score_triplets",
+]
+
+#: Regime names, in code order: ``regime_codes`` returns int8 indices into this tuple.
+REGIMES = ("easy", "semi-hard", "hard")
+#: Accepted values of every ``distance`` argument.
+DISTANCES = ("squared", "euclidean")
+_REDUCTIONS = ("mean", "sum", "none")
+_AVERAGES = ("all", "active")
+
+# Transient memory allowed for one block of a blocked computation (batch-all, score_triplets).
+_BLOCK_BYTES = 32 * 2**20
+
+
+# -- validation of scalar options (array inputs go through _validate) -------------------------
+def _check_distance(distance):
+    if not isinstance(distance, str) or distance not in DISTANCES:
+        raise TripletkitError(
+            f"distance must be 'squared' or 'euclidean', got {distance!r}; pick one of those two"
+        )
+    return distance
+
+
+def _check_margin(margin):
+    if isinstance(margin, (bool, np.bool_)):
+        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}")
+    try:
+        value = float(margin)
+    except (TypeError, ValueError):
+        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}") from None
+    if not np.isfinite(value) or value < 0:
+        raise TripletkitError(f"margin must be a finite number >= 0, got {margin!r}")
+    return value
+
+
+def _check_flag(value, name):
+    if not isinstance(value, (bool, np.bool_)):
+        raise TripletkitError(f"{name} must be True or False, got {value!r}")
+    return bool(value)
+
+
+def _check_choice(value, name, choices):
+    if not isinstance(value, str) or value not in choices:
+        allowed = ", ".join(repr(c) for c in choices)
+        raise TripletkitError(f"{name} must be one of {allowed}, got {value!r}")
+    return value
+
+
+def _check_block(block_size, name="block_size"):
+    if block_size is None:
+        return None
+    if isinstance(block_size, (bool, np.bool_)) or not isinstance(block_size, (int, np.integer)) or block_size < 1:
+        raise TripletkitError(f"{name} must be a positive integer or None, got {block_size!r}")
+    return int(block_size)
+
+
+def _raw_rows(x, name):
+    """Validate raw vectors and return them as float64 unit rows plus their norms.
+
+    Shapes, finiteness and zero norms are checked by the shared helper (which works in the
+    package's float32 embedding dtype); the arithmetic then uses float64 copies of the input.
+    """
+    as_embeddings(x, name, normalise=True)
+    x64 = np.asarray(x, dtype=np.float64)
+    norms = np.sqrt(np.einsum("ij,ij->i", x64, x64))
+    return x64 / norms[:, None], norms
+
+
+def _check_same_dim(**arrays):
+    dims = {k: np.shape(v)[1] for k, v in arrays.items()}
+    if len(set(dims.values())) > 1:
+        desc = ", ".join(f"{k}={v}" for k, v in dims.items())
+        raise TripletkitError(f"inputs must have the same dimension, got {desc}; embed them with one model")
+
+
+def _as_distances(d, name):
+    arr = np.asarray(d)
+    if arr.dtype == object or not np.issubdtype(arr.dtype, np.number) or np.issubdtype(arr.dtype, np.complexfloating):
+        raise TripletkitError(f"{name} must hold real numbers, got dtype {arr.dtype}")
+    arr = arr.astype(np.float64)
+    if not np.isfinite(arr).all():
+        raise TripletkitError(f"{name} has {int((~np.isfinite(arr)).sum())} NaN or Inf values; distances must be finite")
+    if (arr < 0).any():
+        raise TripletkitError(f"{name} has {int((arr < 0).sum())} negative values; distances are >= 0")
+    return arr
+
+
+def _warn(message):
+    warnings.warn(message, RuntimeWarning, stacklevel=3)
+
+
+# -- the shared arithmetic (inputs trusted) ---------------------------------------------------
+def _back_through_normalise(g_u, u, norms):
+    # d(x/||x||)/dx = (I - u u^T)/||x||: drop the radial part of the gradient, rescale by 1/||x||.
+    radial = np.einsum("ij,ij->i", g_u, u)
+    return (g_u - u * radial[:, None]) / norms[:, None]
+
+
+def _rowwise(ua, ub, distance):
+    """Row-wise distances and the difference vectors ``ua - ub`` (kept for the gradient)."""
+    diff = ua - ub
+    # The difference form is accurate for nearby points, where 2 - 2 cos would cancel.
+    sq = np.einsum("ij,ij->i", diff, diff)
+    return (sq if distance == "squared" else np.sqrt(sq)), diff
+
+
+def _slope_factor(dist, distance):
+    """d(distance)/d(ua) = factor * (ua - ub): 2 for squared, 1/||ua - ub|| for Euclidean."""
+    if distance == "squared":
+        return np.full_like(dist, 2.0)
+    out = np.zeros_like(dist)
+    # Subgradient 0 at a zero Euclidean distance, where sqrt is not differentiable.
+    np.divide(1.0, dist, out=out, where=dist > 0)
+    return out
+
+
+def _pairwise(u, distance):
+    """All-pairs distances of unit rows, (n, n) float64, via the Gram matrix.
+
+    The absolute error of a squared distance is about 1e-15 (cancellation in 2 - 2 cos).
+    """
+    sq = 2.0 - 2.0 * (u @ u.T)
+    np.clip(sq, 0.0, 4.0, out=sq)  # rounding can step just outside [0, 4]
+    np.fill_diagonal(sq, 0.0)
+    return sq if distance == "squared" else np.sqrt(sq)
+
+
+def _terms(d_ap, d_an, margin, soft):
+    """Per-triplet loss, d(loss)/d(d_ap) (= -d(loss)/d(d_an)) and the active mask."""
+    # (d_ap + margin) - d_an is zero or negative exactly when d_an >= d_ap + margin, so in floating
+    # point the zero-loss set of the hinge coincides with the 'easy' regime of _regime_codes.
+    violation = (d_ap + margin) - d_an
+    active = violation > 0
+    if soft:
+        z = d_ap - d_an
+        loss = np.logaddexp(0.0, z)  # log(1 + exp(z)) without overflow
+        slope = np.exp(z - loss)  # the logistic sigmoid of z, stable for both signs
+    else:
+        loss = np.maximum(violation, 0.0) + 0.0  # + 0.0 turns -0.0 into 0.0
+        slope = active.astype(np.float64)  # subgradient 0 at the kink
+    return loss, slope, active
+
+
+def _regime_codes(d_ap, d_an, margin):
+    codes = np.zeros(np.broadcast_shapes(np.shape(d_ap), np.shape(d_an)), dtype=np.int8)
+    codes[d_an < d_ap + margin] = 1
+    codes[d_an < d_ap] = 2
+    return codes
+
+
+def _grad_from_pair_weights(weights, u, norms, dist, distance):
+    """Gradient w.r.t. the raw rows from ``weights[i, j] = dL/dD[i, j]`` of a pairwise matrix D."""
+    # D[i, j] depends on u_i and u_j symmetrically, so row i collects weights from both D[i, j]
+    # and D[j, i]; both have derivative factor * (u_i - u_j) with respect to u_i.
+    sym = weights + weights.T
+    w = sym * _slope_factor(dist, distance)
+    g_u = w.sum(axis=1)[:, None] * u - w @ u
+    return _back_through_normalise(g_u, u, norms)
+
+
+# -- public: distances, per-triplet losses, regimes ------------------------------------------
+def pair_distance(a, b, distance="squared"):
+    """Row-wise distance between the directions of ``a`` and ``b``.
+
+    Parameters
+    ----------
+    a, b : array-like of shape (n, d)
+        Raw vectors; each row is L2-normalised first.
+    distance : {"squared", "euclidean"}, default "squared"
+        ``"squared"`` gives ||u_a - u_b||^2 = 2 - 2 cos(a, b) in [0, 4]; ``"euclidean"`` its square
+        root, in [0, 2].
+
+    Returns
+    -------
+    ndarray of float64, shape (n,)
+
+    Examples
+    --------
+    >>> pair_distance([[1.0, 0.0]], [[0.0, 3.0]]).tolist()
+    [2.0]
+    """
+    distance = _check_distance(distance)
+    ua, _ = _raw_rows(a, "a")
+    ub, _ = _raw_rows(b, "b")
+    check_same_length(a=ua, b=ub)
+    _check_same_dim(a=ua, b=ub)
+    return _rowwise(ua, ub, distance)[0]
+
+
+def _triplet_inputs(anchor, positive, negative):
+    ua, na = _raw_rows(anchor, "anchor")
+    up, np_ = _raw_rows(positive, "positive")
+    un, nn = _raw_rows(negative, "negative")
+    check_same_length(anchor=ua, positive=up, negative=un)
+    _check_same_dim(anchor=ua, positive=up, negative=un)
+    return (ua, na), (up, np_), (un, nn)
+
+
+def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", soft=False):
+    """Per-triplet loss of raw embeddings (rows are L2-normalised first).
+
+    Parameters
+    ----------
+    anchor, positive, negative : array-like of shape (n, d)
+        Raw embeddings; row i of the three arrays forms triplet i.
+    margin : float, default 0.2
+        The margin alpha >= 0 of the hinge (0.2 is the value of [1]_). Ignored by the loss value
+        when ``soft`` is true.
+    distance : {"squared", "euclidean"}, default "squared"
+    soft : bool, default False
+        Use the soft margin log(1 + exp(d_ap - d_an)) of [2]_ instead of the hinge.
+
+    Returns
+    -------
+    ndarray of float64, shape (n,)
+        ``max(0, d_ap - d_an + margin)`` or ``log(1 + exp(d_ap - d_an))``; never negative.
+
+    References
+    ----------
+    .. [1] F. Schroff, D. Kalenichenko, J. Philbin, "FaceNet", CVPR 2015, Sec. 3.1.
+    .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
+       Re-Identification", arXiv:1703.07737, 2017.
+    """
+    distance = _check_distance(distance)
+    margin = _check_margin(margin)
+    soft = _check_flag(soft, "soft")
+    (ua, _), (up, _), (un, _) = _triplet_inputs(anchor, positive, negative)
+    d_ap = _rowwise(ua, up, distance)[0]
+    d_an = _rowwise(ua, un, distance)[0]
+    return _terms(d_ap, d_an, margin, soft)[0]
+
+
+def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared", soft=False,
+                      reduction="mean"):
+    """Triplet loss and its gradients with respect to the raw (pre-normalisation) inputs.
+
+    Parameters
+    ----------
+    anchor, positive, negative : array-like of shape (n, d)
+        Raw embeddings, as in :func:`triplet_loss`.
+    margin, distance, soft
+        As in :func:`triplet_loss`.
+    reduction : {"mean", "sum", "none"}, default "mean"
+        ``"mean"``/``"sum"`` reduce the n losses to one float; ``"none"`` returns the (n,) losses,
+        and row i of each gradient is then the gradient of loss i alone.
+
+    Returns
+    -------
+    loss : float or ndarray of shape (n,)
+        NaN (with a RuntimeWarning) for ``reduction="mean"`` on zero triplets.
+    grad_anchor, grad_positive, grad_negative : ndarray of float64, shape (n, d)
+        Row i is the gradient with respect to row i of the corresponding input. When the same raw
+        vector appears in several rows (e.g. rows gathered from one matrix), sum its rows, e.g.
+        with ``np.add.at``.
+
+    Notes
+    -----
+    Subgradients: at a hinge kink (d_ap - d_an + margin exactly 0) the loss is 0 and its gradient is
+    taken as 0; at a zero Euclidean distance the gradient of that distance is taken as 0.
+    """
+    distance = _check_distance(distance)
+    margin = _check_margin(margin)
+    soft = _check_flag(soft, "soft")
+    reduction = _check_choice(reduction, "reduction", _REDUCTIONS)
+    (ua, na), (up, np_), (un, nn) = _triplet_inputs(anchor, positive, negative)
+    n = ua.shape[0]
+    d_ap, diff_ap = _rowwise(ua, up, distance)
+    d_an, diff_an = _rowwise(ua, un, distance)
+    loss, slope, _ = _terms(d_ap, d_an, margin, soft)
+    if reduction == "mean":
+        if n == 0:
+            _warn("triplet_loss_grad got zero triplets; the mean loss is undefined (NaN)")
+            value = float("nan")
+        else:
+            value = float(loss.sum() / n)
+            slope = slope / n
+    elif reduction == "sum":
+        value = float(loss.sum())
+    else:
+        value = loss
+    c_ap = (slope * _slope_factor(d_ap, distance))[:, None]
+    c_an = (slope * _slope_factor(d_an, distance))[:, None]
+    g_a = c_ap * diff_ap - c_an * diff_an
+    g_p = -c_ap * diff_ap
+    g_n = c_an * diff_an
+    return (
+        value,
+        _back_through_normalise(g_a, ua, na),
+        _back_through_normalise(g_p, up, np_),
+        _back_through_normalise(g_n, un, nn),
+    )
+
+
+def regime_codes(d_ap, d_an, margin=0.2):
+    """Regime of each triplet as int8 codes into :data:`REGIMES` (0 easy, 1 semi-hard, 2 hard).
+
+    Parameters
+    ----------
+    d_ap, d_an : array-like of non-negative floats, broadcastable to one shape
+        Anchor-positive and anchor-negative distances (any one distance convention).
+    margin : float, default 0.2
+
+    Returns
+    -------
+    ndarray of int8 with the broadcast shape
+
+    Notes
+    -----
+    hard: d_an < d_ap; semi-hard: d_ap <= d_an < d_ap + margin; easy: d_an >= d_ap + margin. The
+    comparison is made in float64 with ``d_ap + margin`` computed once, the same expression the
+    hinge uses, so "easy" is exactly "hinge loss 0". With margin 0 no triplet is semi-hard.
+    """
+    margin = _check_margin(margin)
+    d_ap = _as_distances(d_ap, "d_ap")
+    d_an = _as_distances(d_an, "d_an")
+    try:
+        np.broadcast_shapes(d_ap.shape, d_an.shape)
+    except ValueError:
+        raise TripletkitError(
+            f"d_ap has shape {d_ap.shape} and d_an has shape {d_an.shape}; give one distance pair per triplet"
+        ) from None
+    return _regime_codes(d_ap, d_an, margin)
+
+
+def regime_of(d_ap, d_an, margin=0.2):
+    """Regime name of each triplet ("easy", "semi-hard" or "hard"); see :func:`regime_codes`.
+
+    Examples
+    --------
+    >>> regime_of([0.5, 0.5, 0.5], [0.25, 0.5, 0.75], margin=0.25).tolist()
+    ['hard', 'semi-hard', 'easy']
+    """
+    return np.asarray(REGIMES)[regime_codes(d_ap, d_an, margin)]
+
+
+# -- public: reductions over a labelled batch -------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class BatchLoss:
+    """Result of a batch reduction.
+
+    Attributes
+    ----------
+    loss : float
+        The averaged loss that ``grad`` is the gradient of.
+    grad : ndarray of float64, shape (n, d)
+        Gradient of ``loss`` with respect to the raw batch rows.
+    triplets : int
+        Number of triplets that entered the reduction.
+    active : int
+        How many of them violate the margin (d_ap - d_an + margin > 0).
+    active_fraction : float
+        ``active / triplets``.
+    loss_all : float
+        Mean loss over all ``triplets``.
+    loss_active : float
+        Mean loss over the active triplets (0.0 when none is active).
+
+    With no valid triplet (a single identity, or no identity with two rows) the floats are NaN,
+    ``grad`` is zero and a RuntimeWarning says why.
+    """
+
+    loss: float
+    grad: np.ndarray = field(repr=False)
+    triplets: int
+    active: int
+    active_fraction: float
+    loss_all: float
+    loss_active: float
+
+
+def _batch_inputs(X, labels):
+    u, norms = _raw_rows(X, "X")
+    codes, _ = as_codes(labels, n=u.shape[0], name="labels")
+    same = codes[:, None] == codes[None, :]
+    pos = same.copy()
+    np.fill_diagonal(pos, False)
+    return u, norms, pos, ~same
+
+
+def _empty_batch(u, what):
+    _warn(f"{what}: the batch has no valid triplet (it needs an identity with two rows and a second "
+          "identity); the loss is undefined (NaN)")
+    nan = float("nan")
+    return BatchLoss(loss=nan, grad=np.zeros_like(u), triplets=0, active=0, active_fraction=nan,
+                     loss_all=nan, loss_active=nan)
+
+
+def _pair_block(n):
+    # About 5 float64-sized (block, n) temporaries live at once per block of positive pairs.
+    return max(1, _BLOCK_BYTES // (40 * max(n, 1)))
+
+
+def batch_all_loss(X, labels, margin=0.2, distance="squared", soft=False, *, average="all",
+                   block_size=None):
+    """Triplet loss over every valid triplet of a labelled batch ("batch-all" of [2]_).
+
+    A valid triplet is (a, p, n) with a != p, label(p) == label(a) and label(n) != label(a).
+
+    Parameters
+    ----------
+    X : array-like of shape (n, d)
+        Raw embeddings of the batch; rows are L2-normalised first.
+    labels : array-like of shape (n,)
+        Identity of each row (any hashable values).
+    margin, distance, soft
+        As in :func:`triplet_loss`.
+    average : {"all", "active"}, default "all"
+        Which mean ``loss`` and ``grad`` refer to: over all valid triplets, or over the active ones
+        only (the "non-zero terms" average of [2]_; the active count is held fixed, which is its
+        exact derivative away from kinks). Both means are always reported.
+    block_size : int or None
+        Anchor-positive pairs handled per block; None sizes blocks to about 32 MB.
+
+    Returns
+    -------
+    BatchLoss
+
+    Notes
+    -----
+    Vectorised over blocks of anchor-positive pairs, each against all n rows. Memory is
+    O(n^2) for the distance matrix and its gradient (two float64 (n, n) arrays: 256 MB at
+    n = 4096) plus O(block_size * n) per block; time is O(P * n) for P anchor-positive pairs.
+
+    References
+    ----------
+    .. [1] F. Schroff, D. Kalenichenko, J. Philbin, "FaceNet", CVPR 2015, Sec. 3.1.
+    .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
+       Re-Identification", arXiv:1703.07737, 2017.
+    """
+    distance = _check_distance(distance)
+    margin = _check_margin(margin)
+    soft = _check_flag(soft, "soft")
+    average = _check_choice(average, "average", _AVERAGES)
+    block_size = _check_block(block_size)
+    u, norms, pos, neg = _batch_inputs(X, labels)
+    n = u.shape[0]
+    n_neg = neg.sum(axis=1)
+    anchors, positives = np.nonzero(pos & (n_neg > 0)[:, None])  # row-major: anchors sorted
+    triplets = int(n_neg[anchors].sum())
+    if triplets == 0:
+        return _empty_batch(u, "batch_all_loss")
+    dist = _pairwise(u, distance)
+    weights = np.zeros((n, n))  # dL/d dist[a, j], filled block by block
+    total = total_active = 0.0
+    active = 0
+    step = block_size or _pair_block(n)
+    for start in range(0, anchors.shape[0], step):
+        a = anchors[start:start + step]
+        p = positives[start:start + step]
+        mask = neg[a]  # (b, n): the negatives of each anchor
+        loss, slope, act = _terms(dist[a, p][:, None], dist[a], margin, soft)
+        act &= mask
+        loss = np.where(mask, loss, 0.0)
+        total += float(loss.sum())
+        total_active += float(loss[act].sum())
+        active += int(act.sum())
+        w = np.where(mask if average == "all" else act, slope, 0.0)
+        # (a, p) pairs are unique, so plain fancy-index += is safe for the positive side; anchors
+        # repeat within a block, so the negative side needs an unbuffered add.
+        weights[a, p] += w.sum(axis=1)
+        np.add.at(weights, a, -w)
+    loss_all = total / triplets
+    loss_active = total_active / active if active else 0.0
+    count = triplets if average == "all" else active
+    if count:
+        weights /= count
+    grad = _grad_from_pair_weights(weights, u, norms, dist, distance)
+    return BatchLoss(loss=loss_all if average == "all" else loss_active, grad=grad, triplets=triplets,
+                     active=active, active_fraction=active / triplets, loss_all=loss_all,
+                     loss_active=loss_active)
+
+
+def batch_hard_loss(X, labels, margin=0.2, distance="squared", soft=False):
+    """Triplet loss of the hardest positive and hardest negative of each anchor ("batch-hard" of [2]_).
+
+    For each anchor a: p* = argmax d(a, p) over its positives (same label, p != a) and
+    n* = argmin d(a, n) over its negatives; the loss is the mean of the per-anchor losses of
+    (a, p*, n*). Anchors without a positive or without a negative are skipped.
+
+    Parameters
+    ----------
+    X : array-like of shape (n, d)
+        Raw embeddings of the batch; rows are L2-normalised first.
+    labels : array-like of shape (n,)
+    margin, distance, soft
+        As in :func:`triplet_loss`.
+
+    Returns
+    -------
+    BatchLoss
+        ``triplets`` is the number of anchors used; ``loss == loss_all``.
+
+    Notes
+    -----
+    Exact ties for the hardest positive or negative go to the lowest row index (``argmax`` /
+    ``argmin``), which also fixes the subgradient there. Memory O(n^2) (a few (n, n) arrays).
+
+    References
+    ----------
+    .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
+       Re-Identification", arXiv:1703.07737, 2017.
+    """
+    distance = _check_distance(distance)
+    margin = _check_margin(margin)
+    soft = _check_flag(soft, "soft")
+    u, norms, pos, neg = _batch_inputs(X, labels)
+    n = u.shape[0]
+    valid = pos.any(axis=1) & neg.any(axis=1)
+    anchors = np.flatnonzero(valid)
+    if anchors.shape[0] == 0:
+        return _empty_batch(u, "batch_hard_loss")
+    dist = _pairwise(u, distance)
+    hardest_pos = np.argmax(np.where(pos, dist, -np.inf), axis=1)[anchors]
+    hardest_neg = np.argmin(np.where(neg, dist, np.inf), axis=1)[anchors]
+    loss, slope, act = _terms(dist[anchors, hardest_pos], dist[anchors, hardest_neg], margin, soft)
+    count = anchors.shape[0]
+    weights = np.zeros((n, n))
+    # Each anchor appears once, so its (anchor, p*) and (anchor, n*) cells are distinct.
+    weights[anchors, hardest_pos] += slope / count
+    weights[anchors, hardest_neg] -= slope / count
+    grad = _grad_from_pair_weights(weights, u, norms, dist, distance)
+    active = int(act.sum())
+    loss_all = float(loss.sum() / count)
+    return BatchLoss(loss=loss_all, grad=grad, triplets=int(count), active=active,
+                     active_fraction=active / count, loss_all=loss_all,
+                     loss_active=float(loss[act].sum() / active) if active else 0.0)
+
+
+# -- public: scoring a triplet table against an embedding table ------------------------------
+def _py(value):
+    """A numpy scalar as the plain Python value (for messages)."""
+    return value.item() if isinstance(value, np.generic) else value
+
+
+def _as_id_column(ids, name):
+    arr = np.asarray(ids)
+    if arr.ndim != 1:
+        raise TripletkitError(f"{name} must be a 1-D column of ids, got shape {arr.shape}")
+    return arr
+
+
+def _label_check(table, rows_a, rows_b, same, a_ids, b_ids, role):
+    la, lb = table.labels[rows_a], table.labels[rows_b]
+    bad = (la != lb) if same else (la == lb)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        rule = "must share the anchor's label" if same else "must have a label other than the anchor's"
+        raise TripletkitError(
+            f"{int(bad.sum())} of {bad.shape[0]} triplets have a wrong {role} (first: row {i}, anchor "
+            f"{_py(a_ids[i])!r} label {_py(table.label_values[la[i]])!r}, {role} {_py(b_ids[i])!r} "
+            f"label {_py(table.label_values[lb[i]])!r}); a {role} {rule}"
+        )
+
+
+def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, distance="squared",
+                   soft=False):
+    """Score a triplet table against an embedding table: mean loss, active fraction, regimes.
+
+    Parameters
+    ----------
+    table : tripletkit.table.EmbeddingTable
+        Supplies ``positions(ids)``, integer ``labels``, ``label_values`` and unit ``embeddings``.
+    anchor_ids, positive_ids, negative_ids : array-like of shape (t,)
+        Ids of ``table``; row i forms triplet i.
+    margin, distance, soft
+        As in :func:`triplet_loss`.
+
+    Returns
+    -------
+    dict
+        ``triplets`` (int), ``mean_loss`` (float or None), ``active_fraction`` (float or None) and
+        ``regimes`` (``{"easy": int, "semi-hard": int, "hard": int}``). With zero triplets the two
+        means are None and a RuntimeWarning says why.
+
+    Notes
+    -----
+    Distances are recomputed in float64 from the table's rows (re-normalised in float64), in blocks
+    of triplets, so memory is O(block * d) beyond the table itself. The numbers equal
+    :func:`triplet_loss` on the same vectors.
+    """
+    distance = _check_distance(distance)
+    margin = _check_margin(margin)
+    soft = _check_flag(soft, "soft")
+    a_ids = _as_id_column(anchor_ids, "anchor ids")
+    p_ids = _as_id_column(positive_ids, "positive ids")
+    n_ids = _as_id_column(negative_ids, "negative ids")
+    check_same_length(anchor=a_ids, positive=p_ids, negative=n_ids)
+    rows_a = table.positions(a_ids, what="anchor ids")
+    rows_p = table.positions(p_ids, what="positive ids")
+    rows_n = table.positions(n_ids, what="negative ids")
+    same_row = rows_a == rows_p
+    if same_row.any():
+        i = int(np.flatnonzero(same_row)[0])
+        raise TripletkitError(
+            f"{int(same_row.sum())} triplets use the same row as anchor and positive (first: row {i}, id "
+            f"{_py(a_ids[i])!r}); a positive must be another sample of the anchor's identity"
+        )
+    _label_check(table, rows_a, rows_p, True, a_ids, p_ids, "positive")
+    _label_check(table, rows_a, rows_n, False, a_ids, n_ids, "negative")
+    t = rows_a.shape[0]
+    counts = np.zeros(len(REGIMES), dtype=np.int64)
+    if t == 0:
+        _warn("score_triplets got zero triplets; mean_loss and active_fraction are undefined (None)")
+        return {"triplets": 0, "mean_loss": None, "active_fraction": None,
+                "regimes": dict(zip(REGIMES, counts.tolist()))}
+    emb = table.embeddings
+    step = max(1, _BLOCK_BYTES // (8 * 8 * emb.shape[1]))
+    total = 0.0
+    active = 0
+    for start in range(0, t, step):
+        blk = slice(start, start + step)
+        ua, up, un = (_unit64(emb[rows[blk]]) for rows in (rows_a, rows_p, rows_n))
+        d_ap = _rowwise(ua, up, distance)[0]
+        d_an = _rowwise(ua, un, distance)[0]
+        loss, _, act = _terms(d_ap, d_an, margin, soft)
+        total += float(loss.sum())
+        active += int(act.sum())
+        counts += np.bincount(_regime_codes(d_ap, d_an, margin), minlength=len(REGIMES))
+    return {"triplets": int(t), "mean_loss": total / t, "active_fraction": active / t,
+            "regimes": dict(zip(REGIMES, counts.tolist()))}
+
+
+def _unit64(rows):
+    x = rows.astype(np.float64)
+    return x / np.sqrt(np.einsum("ij,ij->i", x, x))[:, None]
