@@ -49,3 +49,16 @@ def test_unwritable_folder(tmp_path):
                 pass
     finally:
         ro.chmod(0o700)
+
+
+def test_outputs_get_ordinary_permissions(tmp_path):
+    mask = os.umask(0o022)
+    try:
+        with atomic_path(tmp_path / "f.txt") as tmp:
+            tmp.write_text("x")
+        with atomic_path(tmp_path / "d", directory=True):
+            pass
+    finally:
+        os.umask(mask)
+    assert (tmp_path / "f.txt").stat().st_mode & 0o777 == 0o644
+    assert (tmp_path / "d").stat().st_mode & 0o777 == 0o755

@@ -32,6 +32,12 @@ def check_output(path, force=False):
     return path
 
 
+def _umask():
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(path, force=False, directory=False):
     """Yield a temporary path beside ``path``; on success rename it to ``path``.
@@ -53,10 +59,13 @@ def atomic_path(path, force=False, directory=False):
     prefix = f".{path.name}.tmp-"
     if directory:
         tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
+        tmp.chmod(0o777 & ~_umask())
     else:
         fd, name = tempfile.mkstemp(prefix=prefix, dir=parent)
         os.close(fd)
         tmp = Path(name)
+        # mkstemp creates 0600; give the output the permissions an ordinary open() would.
+        tmp.chmod(0o666 & ~_umask())
     try:
         yield tmp
         if path.exists():
