@@ -7,6 +7,7 @@ never replaced unless ``force`` is set. Used by every writer in the package.
 from __future__ import annotations
 
 import contextlib
+import math
 import os
 import shutil
 import tempfile
@@ -14,7 +15,7 @@ from pathlib import Path
 
 from ._errors import TripletkitError
 
-__all__ = ["atomic_path", "check_output"]
+__all__ = ["atomic_path", "check_output", "jsonable"]
 
 
 def check_output(path, force=False):
@@ -87,3 +88,20 @@ def atomic_path(path, force=False, directory=False):
             with contextlib.suppress(FileNotFoundError):
                 tmp.unlink()
         raise
+
+
+def jsonable(obj):
+    """Convert summaries (``to_dict()``), numpy scalars and non-finite floats to JSON-ready values."""
+    if hasattr(obj, "to_dict"):
+        obj = obj.to_dict()
+    if isinstance(obj, dict):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [jsonable(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    if hasattr(obj, "item") and getattr(obj, "ndim", 1) == 0:
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj

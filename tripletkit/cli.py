@@ -17,6 +17,7 @@ import typing
 
 from . import __version__
 from ._errors import TripletkitError
+from ._io import jsonable
 from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
 
 __all__ = ["main", "build_parser"]
@@ -218,20 +219,6 @@ def _run(args):
     raise AssertionError(args.command)  # argparse guarantees a known command
 
 
-def _plain(obj):
-    """Convert summaries and numpy values to JSON-ready Python objects."""
-    if hasattr(obj, "to_dict"):
-        obj = obj.to_dict()
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if hasattr(obj, "item") and getattr(obj, "ndim", 1) == 0:
-        return obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
-
 
 def _text(obj, indent=0):
     lines = []
@@ -260,7 +247,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
     previous = signal.signal(signal.SIGTERM, _on_sigterm)
     try:
-        result = _plain(_run(args))
+        result = jsonable(_run(args))
     except TripletkitError as exc:
         if args.debug:
             raise

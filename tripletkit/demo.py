@@ -45,7 +45,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import atomic_path, check_output
+from ._io import atomic_path, check_output, jsonable
 
 __all__ = [
     "DEFAULT_SEED",
@@ -56,6 +56,7 @@ __all__ = [
     "EMBEDDING_DIM",
     "generate",
     "demo_paths",
+    "run_demo",
     "main",
 ]
 
@@ -434,6 +435,111 @@ def demo_paths(cache_dir=None):
     if all(p.is_file() for p in cache.values()):
         return cache
     return generate(cache_dir, seed=DEFAULT_SEED, force=True)
+
+#: The margin sweep the demo runs (fit-head mode on the raw features); paths are filled in.
+DEMO_SWEEP_TOML = """\
+# Written by `tripletkit demo`: a fit-head margin sweep on the demo features.
+[sweep]
+margins = [0.05, 0.2, 0.4]
+mode = "fit-head"
+primary = "eer"
+bootstrap = 100
+
+[data]
+train = "{train}"
+heldout = "{heldout}"
+
+[head]
+dim = 16
+epochs = 4
+
+[evaluation]
+bootstrap = 100
+"""
+
+
+def _stage(progress, text):
+    if progress:
+        print(f"[demo] {text}", file=sys.stderr, flush=True)
+
+
+def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
+    """Run the loop on the demo data: check, mine, loss, score and a fit-head margin sweep.
+
+    Everything is written inside ``out`` (created atomically: an interrupted demo leaves nothing):
+    ``check.json``, ``triplets.parquet`` (+ ``triplets.duplicates.parquet``), ``loss.json``,
+    ``score/`` (the evaluation report of the held-out seals), ``sweep.toml`` and ``sweep/``, and
+    ``demo.json`` summarising all of it.
+
+    Parameters
+    ----------
+    out : str or Path
+        Folder to create.
+    force : bool, default False
+        Replace an existing ``out``.
+    quiet : bool, default False
+        No progress on stderr.
+    sweep : bool, default True
+        Run the margin sweep (the slowest stage).
+
+    Returns
+    -------
+    dict
+        Summary: per stage its headline numbers and where its outputs are.
+    """
+    from .config import EvaluationConfig, MiningConfig
+    from .evaluate import score
+    from .mining import mine
+    from .table import check
+    from .triplets import triplet_loss_report
+
+    out = Path(out)
+    progress = not quiet
+    summary = {}
+    with atomic_path(out, force=force, directory=True) as tmp:
+        data = demo_paths(cache_dir=tmp / "data")
+        _stage(progress, "checking the training dump and the held-out set")
+        summary["check"] = {"train": check(data["train_embeddings"]), "heldout": check(data["heldout_embeddings"])}
+        (tmp / "check.json").write_text(json.dumps(summary["check"], indent=2))
+
+        _stage(progress, "mining semi-hard and hard triplets from the training dump")
+        mining_cfg = MiningConfig(regimes=("semi-hard", "hard"), seed=0)
+        mined = mine(data["train_embeddings"], out=tmp / "triplets.parquet", config=mining_cfg, quiet=quiet)
+        summary["mine"] = {k: v for k, v in jsonable(mined).items() if k not in ("out", "duplicates_out")}
+
+        _stage(progress, "scoring the mined triplets (loss)")
+        summary["loss"] = triplet_loss_report(tmp / "triplets.parquet", data["train_embeddings"],
+                                              margin=mining_cfg.margin)
+        (tmp / "loss.json").write_text(json.dumps(jsonable(summary["loss"]), indent=2))
+
+        _stage(progress, "scoring the held-out seals (verification, retrieval, clustering)")
+        report = score(data["heldout_embeddings"], out=tmp / "score", config=EvaluationConfig(bootstrap=100),
+                       quiet=quiet)
+        ver = report["verification"]
+        summary["score"] = {"eer": ver["eer"], "auc": ver["auc"],
+                            "fnmr_at_fmr": {k: v["fnmr"] for k, v in ver["fnmr_at_fmr"].items()},
+                            "recall_at_1": report["retrieval"]["recall_at_k"].get("1")}
+
+        if sweep:
+            _stage(progress, "sweeping the margin with a projection head on the raw features")
+            cfg_path = tmp / "sweep.toml"
+            cfg_path.write_text(DEMO_SWEEP_TOML.format(train=Path(data["train_features"]).resolve(),
+                                                       heldout=Path(data["heldout_features"]).resolve()))
+            from .sweep import sweep as run_sweep
+
+            result = run_sweep(cfg_path, out=tmp / "sweep", quiet=quiet)
+            summary["sweep"] = {"best": result["comparison"]["best"], "runner_up": result["comparison"]["runner_up"],
+                                "verdict": result["comparison"]["verdict"]}
+        (tmp / "demo.json").write_text(json.dumps(jsonable(summary), indent=2))
+    summary["reports"] = {
+        "folder": str(out),
+        "triplets": str(out / "triplets.parquet"),
+        "score": str(out / "score" / "report.md"),
+        **({"sweep": str(out / "sweep" / "sweep.md")} if sweep else {}),
+    }
+    _stage(progress, f"done; reports are in {out}/ (score/report.md" + (", sweep/sweep.md)" if sweep else ")"))
+    return summary
+
 
 
 def main(argv=None):

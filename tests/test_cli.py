@@ -1,0 +1,85 @@
+"""The command line: one-line errors with exit code 2, JSON output, options from configs."""
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from tripletkit.cli import build_parser, main
+from tripletkit.table import write_table
+
+
+@pytest.fixture
+def small_table(tmp_path, rng):
+    emb = rng.normal(size=(12, 4)).astype(np.float32)
+    labels = np.repeat(np.arange(4), 3)
+    path = tmp_path / "t.parquet"
+    write_table(path, np.arange(12), labels, emb)
+    return path
+
+
+def _run(capsys, *argv):
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_check_json_keys(capsys, small_table):
+    code, out, err = _run(capsys, "check", str(small_table), "--json")
+    assert code == 0 and err == ""
+    data = json.loads(out)
+    for key in ("rows", "dim", "identities", "singletons", "invalid_rows", "unit_norm"):
+        assert key in data
+    assert data["rows"] == 12 and data["dim"] == 4 and data["identities"] == 4
+
+
+def test_bad_input_is_one_line_and_exit_2(capsys, tmp_path):
+    code, out, err = _run(capsys, "check", str(tmp_path / "missing.parquet"))
+    assert code == 2 and out == ""
+    assert err.count("\n") == 1 and err.startswith("error: embedding table") and "does not exist" in err
+
+
+def test_usage_error_is_one_line_and_exit_2(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["mine"])
+    assert info.value.code == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "required" in err
+
+
+def test_loss_command(capsys, tmp_path, small_table):
+    # Triplet 0: anchor 0, positive 1 (label 0), negative 3 (label 1); hand-built table of ids.
+    trip = pa.table({"anchor": [0, 4], "positive": [1, 5], "negative": [3, 0]})
+    pq.write_table(trip, tmp_path / "trip.parquet")
+    code, out, err = _run(capsys, "loss", str(tmp_path / "trip.parquet"), str(small_table), "--json")
+    assert code == 0, err
+    data = json.loads(out)
+    assert data["triplets"] == 2 and sum(data["regimes"].values()) == 2
+    assert data["mean_loss"] >= 0 and 0 <= data["active_fraction"] <= 1
+
+
+def test_loss_command_rejects_unknown_ids(capsys, tmp_path, small_table):
+    pq.write_table(pa.table({"anchor": [0], "positive": [1], "negative": [99]}), tmp_path / "trip.parquet")
+    code, _, err = _run(capsys, "loss", str(tmp_path / "trip.parquet"), str(small_table))
+    assert code == 2 and "99" in err and err.count("\n") == 1
+
+
+def test_options_are_generated_from_config_fields():
+    from tripletkit.config import MiningConfig
+
+    args = build_parser().parse_args(["mine", "t.parquet", "--out", "o.parquet", "--margin", "0.3",
+                                      "--regimes", "hard", "easy", "--exclude-duplicates"])
+    assert args.cfg_MiningConfig_margin == 0.3
+    assert args.cfg_MiningConfig_regimes == ["hard", "easy"]
+    assert args.cfg_MiningConfig_exclude_duplicates is True
+    assert args.cfg_MiningConfig_seed is None  # unset options leave the config value alone
+    assert MiningConfig().seed == 0
+
+
+def test_python_dash_m_and_version():
+    out = subprocess.run([sys.executable, "-m", "tripletkit", "--version"], capture_output=True, text=True)
+    assert out.returncode == 0 and out.stdout.startswith("tripletkit ")
