@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["TripletkitError"]
+__all__ = ["TripletkitError", "TripletkitWarning"]
 
 
 class TripletkitError(ValueError):
@@ -10,4 +10,11 @@ class TripletkitError(ValueError):
 
     The CLI prints ``error: <message>`` on one line and exits with code 2. The message must be a
     single line (no newline characters).
+    """
+
+
+class TripletkitWarning(UserWarning):
+    """Legal but degenerate input (one identity, no impostor pairs, an empty regime).
+
+    The result carries a null with a reason instead of a made-up number.
     """

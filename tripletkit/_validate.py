@@ -12,7 +12,7 @@ from ._errors import TripletkitError
 __all__ = ["as_embeddings", "as_codes", "check_same_length", "l2_normalise"]
 
 
-def as_embeddings(x, name="embeddings", *, normalise=False):
+def as_embeddings(x, name="embeddings", *, normalise=False, dtype=np.float32):
     """Return ``x`` as a C-contiguous float32 matrix of shape (n, d) with finite values.
 
     Parameters
@@ -22,6 +22,8 @@ def as_embeddings(x, name="embeddings", *, normalise=False):
         Name used in error messages.
     normalise : bool, default False
         L2-normalise every row (zero-norm rows are an error).
+    dtype : numpy dtype, default float32
+        float32 for faiss and storage; float64 where gradients are computed.
     """
     arr = np.asarray(x)
     if arr.ndim != 2:
@@ -30,7 +32,7 @@ def as_embeddings(x, name="embeddings", *, normalise=False):
         raise TripletkitError(f"{name} has dimension 0; every row needs at least one value")
     if not np.issubdtype(arr.dtype, np.number) or np.issubdtype(arr.dtype, np.complexfloating):
         raise TripletkitError(f"{name} must hold real numbers, got dtype {arr.dtype}")
-    arr = np.ascontiguousarray(arr, dtype=np.float32)
+    arr = np.ascontiguousarray(arr, dtype=dtype)
     bad = ~np.isfinite(arr).all(axis=1)
     if bad.any():
         first = np.flatnonzero(bad)[:5].tolist()
@@ -53,7 +55,7 @@ def l2_normalise(arr, name="embeddings"):
             f"{name} has {int(zero.sum())} zero-norm rows (first row positions: {first}); "
             "a zero vector has no direction and cannot be normalised"
         )
-    return np.ascontiguousarray(arr / norms[:, None].astype(np.float32), dtype=np.float32)
+    return np.ascontiguousarray(arr / norms[:, None].astype(arr.dtype), dtype=arr.dtype)
 
 
 def as_codes(labels, n=None, name="labels"):
