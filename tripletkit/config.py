@@ -61,6 +61,10 @@ class MiningConfig:
     block_rows: int = _opt(0, "anchors per search block (0: sized from memory_mb)", low=0)
     memory_mb: int = _opt(1024, "memory budget for search blocks, in MB", low=16)
     seed: int = _opt(0, "random seed; the same seed, input and options give the same bytes", low=0)
+    weighted_cutoff: float = _opt(0.5, "distance-weighted: weights are capped at their value at this Euclidean "
+                                  "distance (the cut-off of Wu et al. 2017)", low=0.0, high=2.0, open_low=True)
+    threads: int = _opt(0, "faiss threads for this run (0: faiss's default); hnsw output is reproducible "
+                        "only with 1", low=0)
 
 
 @dataclass(frozen=True)
