@@ -631,3 +631,15 @@ def test_count_below_matches_searchsorted(rng):
     x = rng.random(40)
     want = [int(np.searchsorted(values[a:b], v, side="left")) for a, b, v in zip(lo, hi, x)]
     assert _count_below(values, lo, hi, x).tolist() == want
+
+
+def test_example_config_lists_every_mining_key():
+    import dataclasses
+    import tomllib
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "configs" / "mine.toml"
+    keys = set(tomllib.loads(path.read_text())["mining"])
+    assert keys == {f.name for f in dataclasses.fields(MiningConfig)}
+    cfg = load_config(path).mining
+    assert cfg.max_per_identity == 20 and cfg.regimes == ("semi-hard", "hard")
