@@ -1,0 +1,349 @@
+"""Score an embedding checkpoint on held-out identities: run the metrics, build the report dict.
+
+:func:`score` is the Python face of ``tripletkit score``. It reads the table (and the optional
+pair list), runs the pure metric functions of :mod:`tripletkit.metrics` (verification, retrieval,
+clustering, health) and assembles one report dict with stable keys (listed in :func:`score` and
+the README). With ``out`` it also writes ``report.json``, ``report.md`` and the PNG plots of
+:mod:`tripletkit.report` into a folder, atomically.
+
+Scores are cosine similarities of the unit-normalised embeddings (higher means more alike); a
+pair is accepted at threshold t when its score is >= t (ISO/IEC 19795-1 terms, see
+:mod:`tripletkit.metrics.verification`).
+
+Legal but degenerate input (one identity, every identity with a single row, two rows) is not an
+error: the metric that cannot be computed is ``None`` with a ``reason``, a
+:class:`~tripletkit._errors.TripletkitWarning` is issued, and the warning text is also listed
+under ``warnings`` in the report.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from ._errors import TripletkitError, TripletkitWarning
+from ._io import atomic_path, check_output
+from .config import EvaluationConfig
+from .table import as_table
+
+__all__ = ["score", "read_pair_list"]
+
+# Prefixes of the RuntimeWarnings that the metric functions issue for degenerate input.
+_METRIC_WARNINGS = ("verification:", "retrieval:", "clustering:", "health:")
+
+
+def _say(quiet, text):
+    if not quiet:
+        print(f"[score] {text}", file=sys.stderr, flush=True)
+
+
+# ---------------------------------------------------------------------------------------------
+# the pair list
+# ---------------------------------------------------------------------------------------------
+def _show(v):
+    return repr(v.item() if isinstance(v, np.generic) else v)
+
+
+def read_pair_list(path, table):
+    """Read a Parquet pair list and map its ids to row positions of ``table``.
+
+    Parameters
+    ----------
+    path : str or Path
+        Parquet file with columns ``left`` and ``right`` (ids of ``table``) and optionally
+        ``same`` (boolean: whether the protocol says the pair is genuine).
+    table : EmbeddingTable
+
+    Returns
+    -------
+    left, right : ndarray of int64, shape (p,)
+        Row positions.
+    same : ndarray of bool, shape (p,) or None
+        The ``same`` column, already checked against the labels.
+
+    Raises
+    ------
+    TripletkitError
+        A missing file or column, nulls, an id that is not in the table, a row paired with
+        itself, or a ``same`` value that disagrees with the labels (naming the first such pair).
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    p = Path(path)
+    if not p.is_file():
+        raise TripletkitError(f"pair list {str(p)!r} does not exist; check the path given as pairs")
+    try:
+        pairs = pq.read_table(str(p))
+    except (pa.ArrowException, OSError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise TripletkitError(f"cannot read pair list {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    missing = [c for c in ("left", "right") if c not in pairs.column_names]
+    if missing:
+        raise TripletkitError(
+            f"pair list {str(p)!r} has no column {missing[0]!r} (columns: {', '.join(pairs.column_names)}); "
+            "it needs 'left' and 'right' ids and optionally a boolean 'same'"
+        )
+    if pairs.num_rows == 0:
+        raise TripletkitError(f"pair list {str(p)!r} holds no pairs; give at least one (left, right) row")
+    cols = {}
+    for name in ("left", "right") + (("same",) if "same" in pairs.column_names else ()):
+        col = pairs.column(name)
+        if pa.types.is_dictionary(col.type):
+            col = col.cast(col.type.value_type)
+        if col.null_count:
+            first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+            raise TripletkitError(
+                f"pair list {str(p)!r} column {name!r} has {col.null_count} null values (first at row {first}); "
+                "every pair needs both ids" + (" and a same value" if name == "same" else "")
+            )
+        cols[name] = col
+    if "same" in cols and not pa.types.is_boolean(cols["same"].type):
+        raise TripletkitError(
+            f"pair list {str(p)!r} column 'same' has type {cols['same'].type}; expected boolean (true = same identity)"
+        )
+    left_ids = cols["left"].to_numpy(zero_copy_only=False)
+    right_ids = cols["right"].to_numpy(zero_copy_only=False)
+    left = table.positions(left_ids, what=f"'left' ids of pair list {str(p)!r}")
+    right = table.positions(right_ids, what=f"'right' ids of pair list {str(p)!r}")
+    selfpair = left == right
+    if selfpair.any():
+        i = int(np.flatnonzero(selfpair)[0])
+        raise TripletkitError(
+            f"pair list {str(p)!r} row {i} pairs id {_show(left_ids[i])} with itself; every pair needs two rows"
+        )
+    same = None
+    if "same" in cols:
+        same = cols["same"].to_numpy(zero_copy_only=False).astype(bool)
+        truth = table.labels[left] == table.labels[right]
+        wrong = same != truth
+        if wrong.any():
+            i = int(np.flatnonzero(wrong)[0])
+            la, lb = table.label_values[table.labels[left[i]]], table.label_values[table.labels[right[i]]]
+            raise TripletkitError(
+                f"pair list {str(p)!r} row {i} (left {_show(left_ids[i])}, right {_show(right_ids[i])}) says "
+                f"same={bool(same[i])} but their labels are {_show(la)} and {_show(lb)}; {int(wrong.sum())} pairs "
+                "disagree with the labels; fix the pair list or the table"
+            )
+    return left, right, same
+
+
+# ---------------------------------------------------------------------------------------------
+# the metrics, each with its degenerate cases turned into nulls with a reason
+# ---------------------------------------------------------------------------------------------
+def _verification(table, cfg, pairs):
+    from .metrics.verification import verify_all_pairs, verify_pairs
+
+    common = dict(groups=table.groups, fmr_targets=cfg.fmr, bootstrap=cfg.bootstrap,
+                  confidence=cfg.confidence, seed=cfg.seed)
+    if pairs is None:
+        return verify_all_pairs(table.embeddings, table.labels, memory_budget=cfg.memory_mb * 2**20,
+                                block_rows=cfg.block_rows or None, **common)
+    left, right, same = pairs
+    return verify_pairs(table.embeddings, table.labels, left, right, same=same, **common)
+
+
+def _retrieval(table, cfg):
+    from .metrics.retrieval import retrieval_metrics
+
+    if table.n < 2:
+        reason = "fewer than 2 rows; there is no gallery to search"
+        warnings.warn(f"retrieval: {reason}", RuntimeWarning, stacklevel=2)
+        return {"recall_at_k": {str(k): None for k in sorted(cfg.recall_k)}, "r_precision": None,
+                "map_at_r": None, "queries": 0, "skipped_queries": int(table.n), "reason": reason}
+    return retrieval_metrics(table.embeddings, table.labels, ks=cfg.recall_k,
+                             memory_budget=cfg.memory_mb * 2**20, block_rows=cfg.block_rows or None)
+
+
+def _clustering(table, cfg):
+    from .metrics.clustering import clustering_metrics
+
+    # k = identities <= rows always holds for a table, so k-means is always well posed here;
+    # the metrics module itself turns a single identity into nulls with a reason.
+    return clustering_metrics(table.embeddings, table.labels, seed=cfg.seed)
+
+
+def _health(table):
+    from .metrics.health import (
+        COLLAPSE_MAX_IMPOSTOR_COSINE, COLLAPSE_MIN_DIMENSION, collapsed, health_metrics, mean_impostor_cosine,
+    )
+
+    if table.n >= 2:
+        out = dict(health_metrics(table.embeddings, table.labels))
+    else:
+        # thin adapter: health_metrics needs 2 rows for the effective dimension; one row gives nulls
+        mic = mean_impostor_cosine(table.embeddings, table.labels)
+        warnings.warn("health: fewer than 2 rows; effective dimension is undefined", RuntimeWarning, stacklevel=2)
+        out = {
+            "mean_impostor_cosine": mic,
+            "effective_dimension": None,
+            "collapsed": collapsed(None, mic),
+            "rule": (f"collapsed when effective_dimension < {COLLAPSE_MIN_DIMENSION:g} or "
+                     f"mean_impostor_cosine > {COLLAPSE_MAX_IMPOSTOR_COSINE:g} (our rule of thumb)"),
+        }
+    mic, dim = out["mean_impostor_cosine"], out["effective_dimension"]
+    reasons = []
+    if mic is None:
+        reasons.append("mean_impostor_cosine: no impostor pairs (one identity)")
+    if dim is None:
+        reasons.append("effective_dimension: " + ("fewer than 2 rows" if table.n < 2 else "the embeddings have no variance"))
+    if reasons:
+        out["reason"] = "; ".join(reasons)
+    return out
+
+
+def _stage(name, fn, notes, quiet, describe=""):
+    """Run one metric stage, collecting the metrics' degenerate-input warnings as report notes."""
+    _say(quiet, f"{name}{describe} ...")
+    t0 = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = fn()
+    for w in caught:
+        text = str(w.message)
+        if issubclass(w.category, (RuntimeWarning, TripletkitWarning)) and text.startswith(_METRIC_WARNINGS):
+            notes.append(text)
+            warnings.warn(text, TripletkitWarning, stacklevel=3)
+        else:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    seconds = time.perf_counter() - t0
+    _say(quiet, f"{name} done in {seconds:.2f} s")
+    return result, seconds
+
+
+# ---------------------------------------------------------------------------------------------
+# the public entry
+# ---------------------------------------------------------------------------------------------
+def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None):
+    """Score held-out embeddings: verification, retrieval, clustering and embedding health.
+
+    Parameters
+    ----------
+    source : str, Path, EmbeddingTable or (ids, labels, embeddings[, groups]) tuple
+        The held-out embedding table (identities the model never trained on).
+    out : str or Path, optional
+        Report folder to create with ``report.json``, ``report.md`` and PNG plots. It is written
+        atomically (a temporary sibling folder renamed into place) and an existing folder is
+        only replaced with ``force``. Without ``out`` nothing is written.
+    config : EvaluationConfig, optional
+        Evaluation options (``[evaluation]`` of a TOML config); defaults when omitted.
+    force : bool, default False
+        Replace an existing ``out``.
+    quiet : bool, default False
+        No progress lines on stderr.
+    table_options : dict, optional
+        Column names and ``drop_invalid`` for reading ``source`` (see :meth:`EmbeddingTable.read`).
+    compute : ComputeConfig, optional
+        Reserved for scale-out; a scheduler is not supported yet (an error).
+
+    Returns
+    -------
+    dict
+        The report, with keys
+
+        - ``tripletkit_version``;
+        - ``input``: ``path``, ``fingerprint``, ``rows``, ``identities``, ``dim``,
+          ``dropped_rows``, ``groups`` (number of subgroups or None), ``pair_list`` (path or None);
+        - ``config``: the evaluation options used;
+        - ``verification``: ``genuine_pairs``, ``impostor_pairs``, ``auc``, ``auc_exact``,
+          ``auc_error_bound``, ``eer``, ``eer_threshold``, ``fnmr_at_fmr`` (keyed by the FMR as a
+          string, e.g. ``"0.001"``: ``fnmr``, ``threshold``, ``ci``, ``resolvable``, ``reason``),
+          ``roc`` (``fpr``, ``tpr``, ``threshold``), ``det`` (``fmr``, ``fnmr``),
+          ``score_histogram`` (``edges``, ``genuine``, ``impostor``), ``bootstrap`` and, with a
+          group column, ``groups``; see :func:`tripletkit.metrics.verification.verify_all_pairs`;
+        - ``retrieval``: ``recall_at_k`` (keyed ``"1"``, ``"5"``, ...), ``r_precision``,
+          ``map_at_r``, ``queries``, ``skipped_queries``;
+        - ``clustering``: ``purity``, ``nmi``, ``ari``, ``clusters``, ``seed`` (``None`` when
+          ``clustering = false``);
+        - ``health``: ``mean_impostor_cosine``, ``effective_dimension``, ``collapsed``, ``rule``;
+        - ``warnings``: the degenerate-input warnings of this run (list of str);
+        - ``caution``: :data:`tripletkit.report.CAUTION`;
+        - ``plots``: PNG files written (``[{"file", "title"}]``; empty without ``out``);
+        - ``seconds``: wall time of loading and scoring (writing excluded);
+        - ``stage_seconds``: wall time of each stage.
+
+        A value that cannot be computed is ``None`` with a ``reason`` key beside it.
+
+    Raises
+    ------
+    TripletkitError
+        Bad input: a missing or invalid table or pair list, a pair list that disagrees with the
+        labels, an existing ``out`` without ``force``.
+    """
+    from . import __version__
+    from .report import CAUTION, write_report
+
+    t_start = time.perf_counter()
+    if config is None:
+        config = EvaluationConfig()
+    if not isinstance(config, EvaluationConfig):
+        raise TripletkitError(
+            f"config must be an EvaluationConfig (the [evaluation] section), got {type(config).__name__}"
+        )
+    if compute is not None and getattr(compute, "scheduler", None) is not None:
+        raise TripletkitError(
+            f"scoring on a Dask scheduler (compute scheduler {compute.scheduler!r}) is not available yet; "
+            "leave [compute] scheduler unset to score in this process"
+        )
+    if out is not None:
+        check_output(out, force=force)  # fail before the work, not after it
+    cfg = config
+    stage_seconds = {}
+    notes = []
+
+    t0 = time.perf_counter()
+    table = as_table(source, **(table_options or {}))
+    pairs = None
+    if cfg.pairs is not None:
+        pairs = read_pair_list(cfg.pairs, table)
+    stage_seconds["load"] = time.perf_counter() - t0
+    _say(quiet, f"read {table.n:,} rows, {table.n_identities:,} identities, dimension {table.dim}"
+         + (f", {table.dropped:,} invalid rows dropped" if table.dropped else ""))
+
+    n_pairs = table.n * (table.n - 1) // 2 if pairs is None else pairs[0].size
+    ver, stage_seconds["verification"] = _stage(
+        "verification", lambda: _verification(table, cfg, pairs), notes, quiet,
+        f" over {'all' if pairs is None else 'the listed'} {n_pairs:,} pairs")
+    ret, stage_seconds["retrieval"] = _stage("retrieval", lambda: _retrieval(table, cfg), notes, quiet)
+    clu = None
+    if cfg.clustering:
+        clu, stage_seconds["clustering"] = _stage(
+            "clustering", lambda: _clustering(table, cfg), notes, quiet,
+            f" (k-means, k = {table.n_identities:,})")
+    hea, stage_seconds["health"] = _stage("health", lambda: _health(table), notes, quiet)
+
+    report = {
+        "tripletkit_version": __version__,
+        "input": {
+            "path": table.source if table.source is not None else (str(source) if isinstance(source, (str, Path))
+                                                                    else None),
+            "fingerprint": table.fingerprint,
+            "rows": int(table.n),
+            "identities": int(table.n_identities),
+            "dim": int(table.dim),
+            "dropped_rows": int(table.dropped),
+            "groups": None if table.groups is None else int(len(set(table.groups.tolist()))),
+            "pair_list": None if cfg.pairs is None else str(cfg.pairs),
+        },
+        "config": dataclasses.asdict(cfg),
+        "verification": ver,
+        "retrieval": ret,
+        "clustering": clu,
+        "health": hea,
+        "warnings": notes,
+        "caution": CAUTION,
+        "plots": [],
+        "seconds": time.perf_counter() - t_start,
+        "stage_seconds": stage_seconds,
+    }
+    if out is not None:
+        _say(quiet, f"writing {out}")
+        with atomic_path(out, force=force, directory=True) as tmp:
+            report = write_report(report, tmp, plots=cfg.plots)
+        _say(quiet, f"report written to {Path(out) / 'report.md'}")
+    return report
