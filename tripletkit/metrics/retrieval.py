@@ -31,6 +31,7 @@ References
 
 from __future__ import annotations
 
+import math
 import warnings
 
 import faiss
@@ -57,21 +58,17 @@ def _check_ks(ks):
 def _drop_self(ids, scores, queries):
     """Remove each query from its own result row and rank ties by row position.
 
-    ``ids``/``scores``: (q, k+1) faiss results; ``queries``: (q,) the query rows. Returns (q, k) ids.
+    ``ids``/``scores``: (q, k+1) faiss results; ``queries``: (q,) the query rows. Returns the
+    (q, k) neighbour ids, best first.
     """
     q, k1 = ids.shape
-    is_self = ids == queries[:, None]
-    # a query missing from its results (more than k rows tie at its own score) loses the last one
-    missing = ~is_self.any(axis=1)
-    is_self[missing, k1 - 1] = True
-    # order by (score descending, row position ascending), then drop the self entry
+    # order by (score descending, row position ascending)
     order = np.lexsort((ids, -scores), axis=1)
     ids = np.take_along_axis(ids, order, axis=1)
-    is_self = np.take_along_axis(is_self, order, axis=1)
-    first = np.argmax(is_self, axis=1)
-    keep = ~is_self
-    # rows where a second id matched the query cannot happen (ids are unique within a row)
-    return ids[keep].reshape(q, k1 - 1), first
+    is_self = ids == queries[:, None]
+    # a query missing from its results (more than k rows tie at its own score) loses the last one
+    is_self[~is_self.any(axis=1), k1 - 1] = True
+    return ids[~is_self].reshape(q, k1 - 1)
 
 
 def _hits_metrics(hits, r, ks):
@@ -135,7 +132,7 @@ def retrieval_metrics(embeddings, labels, *, ks=DEFAULT_KS, memory_budget=256 * 
     # the deepest ranking needed: the largest R or K, plus the query itself, and never beyond n
     order = queries[np.argsort(r_all[queries], kind="stable")]  # similar depths share a block
     hit_k = {k: 0 for k in vals}
-    rp_sum = ap_sum = 0.0
+    rp_parts, ap_parts = [], []
     start = 0
     while start < order.size:
         if block_rows is not None:
@@ -150,19 +147,20 @@ def retrieval_metrics(embeddings, labels, *, ks=DEFAULT_KS, memory_budget=256 * 
         block = order[start : start + rows]
         depth = min(n - 1, max(int(r_all[block].max()), vals[-1]))
         scores, ids = index.search(x[block], depth + 1)
-        others, _ = _drop_self(ids, scores, block)
+        others = _drop_self(ids, scores, block)
         hits = codes[others] == codes[block][:, None]
         rec, rprec, ap = _hits_metrics(hits, r_all[block], vals)
         for k in vals:
             hit_k[k] += int(rec[k].sum())
-        rp_sum += float(rprec.sum())
-        ap_sum += float(ap.sum())
+        rp_parts.append(rprec)
+        ap_parts.append(ap)
         start += block.size
     q = queries.size
     return {
         "recall_at_k": {str(k): hit_k[k] / q for k in vals},
-        "r_precision": rp_sum / q,
-        "map_at_r": ap_sum / q,
+        # exactly rounded sums: the same bits whatever the block size or row order
+        "r_precision": math.fsum(np.concatenate(rp_parts).tolist()) / q,
+        "map_at_r": math.fsum(np.concatenate(ap_parts).tolist()) / q,
         "queries": int(q),
         "skipped_queries": int(skipped),
     }

@@ -1,0 +1,71 @@
+"""Tests of tripletkit.metrics.health: brute-force twins, known geometries, the collapse rule."""
+
+import numpy as np
+import pytest
+
+from tripletkit._errors import TripletkitError, TripletkitWarning
+from tripletkit.metrics import health as H
+
+
+def unit_rows(rng, n, d, k):
+    x = rng.standard_normal((n, d)) + 0.5
+    return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), rng.integers(0, k, n)
+
+
+def test_mean_impostor_cosine_matches_every_pair(rng):
+    x, labels = unit_rows(rng, 300, 8, 30)
+    s = x.astype(np.float64) @ x.astype(np.float64).T
+    i, j = np.triu_indices(300, 1)
+    imp = labels[i] != labels[j]
+    brute = s[i[imp], j[imp]].mean()
+    assert H.mean_impostor_cosine(x, labels) == pytest.approx(brute, abs=1e-12)
+    assert H.mean_impostor_cosine(x, labels, block_rows=7) == pytest.approx(brute, abs=1e-12)
+
+
+def test_effective_dimension_is_the_participation_ratio_of_the_eigenvalues(rng):
+    x = rng.standard_normal((500, 6)) * np.array([3.0, 2.0, 1.0, 0.5, 0.2, 0.1])
+    x = (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32)
+    lam = np.linalg.eigvalsh(np.cov(x.astype(np.float64), rowvar=False))
+    brute = lam.sum() ** 2 / (lam**2).sum()
+    assert H.effective_dimension(x) == pytest.approx(brute, rel=1e-10)
+    assert H.effective_dimension(x, block_rows=33) == pytest.approx(brute, rel=1e-10)
+
+
+def test_effective_dimension_of_known_shapes(rng):
+    # spread evenly over d directions: close to d; all along one line (two antipodal points): 1
+    iso = rng.standard_normal((20000, 8))
+    iso = (iso / np.linalg.norm(iso, axis=1, keepdims=True)).astype(np.float32)
+    assert H.effective_dimension(iso) == pytest.approx(8.0, rel=0.02)
+    line = np.array([[1.0, 0.0], [-1.0, 0.0]] * 50, np.float32)
+    assert H.effective_dimension(line) == pytest.approx(1.0)
+
+
+def test_collapse_rule():
+    assert H.collapsed(1.5, 0.1) is True
+    assert H.collapsed(10.0, 0.95) is True
+    assert H.collapsed(10.0, 0.1) is False
+    assert H.collapsed(None, 0.1) is False
+    assert H.collapsed(None, None) is None
+
+
+def test_health_flags_a_collapsed_run(rng):
+    x, labels = unit_rows(rng, 200, 16, 20)
+    out = H.health_metrics(x, labels)
+    assert out["collapsed"] is False and "our rule of thumb" in out["rule"]
+    # every row nearly the same direction: high impostor cosine, low dimension
+    shrunk = np.ones((200, 16)) + 0.01 * rng.standard_normal((200, 16))
+    shrunk = (shrunk / np.linalg.norm(shrunk, axis=1, keepdims=True)).astype(np.float32)
+    out = H.health_metrics(shrunk, labels)
+    assert out["mean_impostor_cosine"] > 0.99 and out["collapsed"] is True
+
+
+def test_degenerate_and_bad_input(rng):
+    x, _ = unit_rows(rng, 10, 4, 1)
+    with pytest.warns(TripletkitWarning, match="health: no impostor pairs"):
+        assert H.mean_impostor_cosine(x, np.zeros(10, int)) is None
+    with pytest.warns(TripletkitWarning, match="no variance"):
+        assert H.effective_dimension(np.tile(x[:1], (5, 1))) is None
+    with pytest.raises(TripletkitError, match="L2 norm is not 1"):
+        H.mean_impostor_cosine(x * 3, np.arange(10))
+    with pytest.raises(TripletkitError, match="at least 2 rows"):
+        H.effective_dimension(x[:1])
