@@ -155,7 +155,8 @@ class Neighbours:
     lims : ndarray of int64, shape (q + 1,)
         Query ``i`` owns ``rows[lims[i]:lims[i+1]]``.
     rows : ndarray of int64
-        Row positions in the index, sorted ascending within each query.
+        Row positions in the index (sorted ascending within each query by :meth:`within` and
+        :func:`scan_within`; in no particular order in the pieces of :meth:`within_pieces`).
     scores : ndarray of float32
         faiss scores (approximate cosines) of those rows.
     widened : int
@@ -241,7 +242,7 @@ class SearchIndex:
             Positions (into ``queries``) of the queries this piece answers; every query is in
             exactly one piece.
         nb : Neighbours
-            Their rows, sorted ascending per query. For ``exact``: a superset of the rows with exact
+            Their rows, grouped by query (in no particular order within a query). For ``exact``: a superset of the rows with exact
             cosine > threshold holding only rows with faiss score >= threshold - slack. For
             ``ivf``/``hnsw``: the same as far as the approximate index finds them.
 
@@ -295,9 +296,7 @@ class SearchIndex:
             counts = np.diff(lims).astype(np.int64)
             owner = np.repeat(np.arange(sel.size, dtype=np.int64), counts)
             ok = D >= low[owner]
-            owner, rows, scores = owner[ok], I[ok].astype(np.int64), D[ok]
-            order = np.lexsort((rows, owner))
-            yield sel, _csr(owner[order], rows[order], scores[order], sel.size, sel.size)
+            yield sel, _csr(owner[ok], I[ok], D[ok], sel.size, sel.size)
             widest = int(counts.max()) if counts.size else 0
             chunk = int(max(chunk, min(_RANGE_CHUNK_MAX, budget // (64 * max(1, 2 * widest)))))
 
@@ -332,12 +331,9 @@ def _csr(qs, rs, ss, q, widened=0, topk=None):
 
 
 def _from_dense(D, I, low, widened=0, topk=None):
-    """CSR of the entries of a (q, k) top-k result with score >= ``low`` (per query), rows sorted."""
+    """CSR of the entries of a (q, k) top-k result with score >= ``low`` (per query)."""
     keep = (I >= 0) & (D >= low[:, None])
-    qi, col = np.nonzero(keep)
-    rows = I[qi, col].astype(np.int64)
-    order = np.lexsort((rows, qi))
-    return _csr(qi[order].astype(np.int64), rows[order], D[qi, col][order], D.shape[0], widened, topk)
+    return _csr(np.nonzero(keep)[0], I[keep], D[keep], D.shape[0], widened, topk)
 
 
 def scan_within(embeddings, queries, thresholds, *, memory_mb=1024):
@@ -383,7 +379,7 @@ def build_index(embeddings, kind="exact", *, nlist=0, nprobe=32, hnsw_m=32, ef_s
 
     Notes
     -----
-    IVF trains on ``min(n, 64 * nlist)`` rows drawn without replacement by
+    IVF trains on ``min(n, 48 * nlist)`` rows drawn without replacement by
     ``np.random.default_rng(seed)``; k-means is spherical (centroids re-normalised), the natural
     choice for inner product on unit vectors. A multi-threaded HNSW build inserts rows in a
     timing-dependent order, so its graph (and the miner's output) is reproducible only when built
@@ -412,7 +408,7 @@ def build_index(embeddings, kind="exact", *, nlist=0, nprobe=32, hnsw_m=32, ef_s
         # The sample below always has >= 39 rows per list when it can; this only silences faiss's
         # stderr warning for tables of fewer than 39 rows.
         index.cp.min_points_per_centroid = 1
-        size = min(n, 64 * lists)
+        size = min(n, 48 * lists)
         rng = np.random.default_rng(seed)
         sample = np.sort(rng.choice(n, size=size, replace=False)) if size < n else np.arange(n)
         index.train(np.ascontiguousarray(x[sample]))
