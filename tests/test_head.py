@@ -170,9 +170,9 @@ def test_epoch_without_triplets_makes_no_update(rng):
 
 # -- the demo data -----------------------------------------------------------------------------
 def _pair_eer(E, labels):
-    from tripletkit.metrics.verification import verification
+    from tripletkit.metrics.verification import verify_all_pairs
 
-    return verification(E, labels, bootstrap=0)["eer"]
+    return verify_all_pairs(E, labels, bootstrap=0)["eer"]
 
 
 def test_demo_head_lowers_heldout_eer_below_raw_features():
@@ -181,6 +181,8 @@ def test_demo_head_lowers_heldout_eer_below_raw_features():
     paths = demo_paths()
     train = EmbeddingTable.read(paths["train_features"])
     held = EmbeddingTable.read(paths["heldout_features"])
+    # 120 of the 300 training seals keep the test short; the held-out seals are all 100.
+    train = train.subset(np.flatnonzero(train.labels < 120))
     head, history = fit_head(train, 0.2, HeadConfig(dim=16, epochs=3, seed=0),
                              MiningConfig(regimes=("semi-hard", "hard"), seed=0), quiet=True)
     raw = _pair_eer(held.embeddings, held.labels)

@@ -97,10 +97,13 @@ class SweepRun:
 class SweepConfig:
     """The ``[sweep]`` section."""
 
-    margins: tuple[float, ...] = _opt((0.05, 0.1, 0.2, 0.4), "margins to compare", low=0.0, open_low=True)
+    margins: tuple[float, ...] | None = _opt(
+        None, "margins to compare (required in fit-head mode; in checkpoints mode they come from the runs "
+        "and, if given, must list the same values)", low=0.0, open_low=True)
     mode: str = _opt("fit-head", "fit-head (fit a projection per margin) or checkpoints",
                      choices=("fit-head", "checkpoints"))
-    primary: str = _opt("fnmr@0.001", "metric that ranks the runs: eer or fnmr@<fmr>")
+    primary: str = _opt("fnmr@0.001", "metric that ranks the runs (lower is better): eer or fnmr@<fmr>, "
+                        "the FMR one of [evaluation] fmr")
     bootstrap: int = _opt(200, "identity resamples for the paired comparison", low=1)
     confidence: float = _opt(0.95, "confidence level of the paired interval", low=0.0, high=1.0, open_low=True)
     seed: int = _opt(0, "seed of the paired resampling", low=0)

@@ -29,7 +29,7 @@ from sklearn.neighbors import NeighborhoodComponentsAnalysis
 
 from tripletkit.config import HeadConfig, MiningConfig
 from tripletkit.head import fit_head
-from tripletkit.metrics.verification import verification
+from tripletkit.metrics.verification import verify_all_pairs
 from tripletkit.table import EmbeddingTable
 
 SPLIT_SEED = 0  # fixed random_state of the stratified split
@@ -85,7 +85,7 @@ def test_sklearn_eer_helper_agrees_with_package(digits):
     # measure the same thing on the raw pixels: agreement to 1e-4 (the tolerance of issue 4).
     _, X_te, _, y_te = digits
     E = X_te / np.linalg.norm(X_te, axis=1, keepdims=True)
-    ours = verification(E.astype(np.float32), y_te, bootstrap=0)["eer"]
+    ours = verify_all_pairs(E.astype(np.float32), y_te, bootstrap=0)["eer"]
     assert ours == pytest.approx(_sklearn_eer(E, y_te), abs=1e-4)
 
 

@@ -1,0 +1,401 @@
+"""Tests of tripletkit.sweep: the paired identity bootstrap (brute-force twin of the weighted counts,
+identical runs, a clearly better run), both modes end to end, outputs, progress, determinism and
+every config error.
+"""
+
+import itertools
+import json
+
+import numpy as np
+import pytest
+
+from tripletkit._errors import TripletkitError
+from tripletkit.metrics.verification import count_scores, equal_error_rate, fnmr_at_fmr, verify_all_pairs
+from tripletkit.sweep import _PairScores, paired_comparison, parse_primary, sweep
+from tripletkit.table import write_table
+
+
+# -- synthetic data (invented, seeded) ---------------------------------------------------------
+def _clusters(rng, identities, per, d, noise, first_label=0, centres=None):
+    centres = rng.normal(size=(identities, d)) if centres is None else centres
+    labels = np.repeat(np.arange(identities), per)
+    X = centres[labels] + noise * rng.normal(size=(labels.size, d))
+    return labels + first_label, X, centres
+
+
+def _unit(X):
+    return X / np.linalg.norm(X, axis=1, keepdims=True)
+
+
+@pytest.fixture
+def feature_tables(tmp_path, rng):
+    """Small train / held-out feature tables: identity clusters under a shared nuisance direction."""
+    d = 12
+    shared = rng.normal(size=(1, d))
+    paths = {}
+    for name, ids, first in (("train", 14, 0), ("heldout", 10, 100)):
+        labels, X, _ = _clusters(rng, ids, 8, d, 0.3, first_label=first)
+        X = X + 2.0 * rng.normal(size=(labels.size, 1)) * shared
+        p = tmp_path / f"{name}.parquet"
+        write_table(p, np.arange(labels.size) + 1000 * first, [f"seal-{v}" for v in labels], X)
+        paths[name] = p
+    return paths
+
+
+@pytest.fixture
+def checkpoint_tables(tmp_path, rng):
+    """Held-out embeddings of two checkpoints of the same photos: 'good' (tight) and 'poor' (noisy)."""
+    labels, good, centres = _clusters(rng, 40, 6, 16, 0.35)
+    poor = centres[labels] + 0.9 * rng.normal(size=good.shape)
+    ids = [f"photo-{i:04d}" for i in range(labels.size)]
+    names = [f"seal-{v}" for v in labels]
+    out = {}
+    for name, X in (("good", good), ("poor", poor)):
+        out[name] = tmp_path / f"{name}.parquet"
+        write_table(out[name], ids, names, X)
+    # the same photos in another row order: a checkpoint dump need not keep the order
+    perm = rng.permutation(labels.size)
+    out["good_shuffled"] = tmp_path / "good_shuffled.parquet"
+    write_table(out["good_shuffled"], np.asarray(ids)[perm], np.asarray(names)[perm], good[perm])
+    return out
+
+
+def _write_config(tmp_path, text, name="sweep.toml"):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+FIT_HEAD = """
+[sweep]
+margins = [0.3, 0.1]
+mode = "fit-head"
+primary = "fnmr@0.01"
+bootstrap = 30
+[data]
+train = "train.parquet"
+heldout = "heldout.parquet"
+[head]
+dim = 4
+epochs = 2
+batch_triplets = 64
+[evaluation]
+fmr = [0.01, 0.1]
+bootstrap = 20
+plots = false
+"""
+
+CHECKPOINTS = """
+[sweep]
+mode = "checkpoints"
+primary = "eer"
+bootstrap = 50
+[[sweep.runs]]
+margin = 0.2
+heldout = "{a}"
+[[sweep.runs]]
+margin = 0.1
+heldout = "{b}"
+[evaluation]
+fmr = [0.01, 0.1]
+bootstrap = 20
+plots = false
+clustering = false
+"""
+
+
+# -- primary metric ----------------------------------------------------------------------------
+def test_parse_primary():
+    assert parse_primary("eer").kind == "eer"
+    p = parse_primary("FNMR@1e-3", fmrs=(0.0001, 0.001))
+    assert (p.kind, p.fmr, p.text) == ("fnmr", 0.001, "fnmr@0.001")
+    for bad in ("fnmr", "fnmr@", "fnmr@abc", "fnmr@0", "fnmr@1.5", "auc", "fnmr@nan"):
+        with pytest.raises(TripletkitError, match="expected 'eer' or 'fnmr@<fmr>'"):
+            parse_primary(bad)
+    with pytest.raises(TripletkitError, match=r"not among \[evaluation\] fmr \(0.0001, 0.01\)"):
+        parse_primary("fnmr@0.001", fmrs=(0.0001, 0.01))
+
+
+# -- the weighted counts of the paired bootstrap -----------------------------------------------
+def _explicit_resample_counts(E, labels, m):
+    """Brute-force twin: build the resampled set (m_i copies of identity i) and list its pairs.
+
+    Copies of one identity are different draws: a pair inside one copy is genuine, a pair of rows
+    of different identities is an impostor pair, and pairs across two copies of the same identity
+    are not formed (they would pair a photo with itself or repeat genuine pairs).
+    """
+    entries = []  # (row, identity, copy)
+    for i in range(labels.max() + 1):
+        for c in range(int(m[i])):
+            entries += [(r, i, c) for r in np.flatnonzero(labels == i)]
+    gen, imp = [], []
+    for (ra, ia, ca), (rb, ib, cb) in itertools.combinations(entries, 2):
+        if ia == ib and ca != cb:
+            continue
+        s = float(np.dot(E[ra], E[rb]))
+        (gen if ia == ib else imp).append(s)
+    return count_scores(gen, imp)
+
+
+def _nonzero(counts):
+    keep = (counts.genuine > 0) | (counts.impostor > 0)
+    return counts.thresholds[keep], counts.genuine[keep], counts.impostor[keep]
+
+
+def test_weighted_counts_equal_explicit_resample(rng):
+    # Small integer vectors: every dot product is an exact float32 integer, so both sides see the
+    # same scores (and ties, which the weighted counts must keep as ties).
+    labels = np.repeat(np.arange(5), [3, 2, 4, 1, 3])
+    E = rng.integers(-2, 3, size=(labels.size, 3)).astype(np.float32)
+    ps = _PairScores(E, labels)
+    for m in (np.ones(5), np.array([2, 0, 1, 3, 0]), np.array([0, 5, 0, 0, 0]), np.array([1, 1, 0, 2, 1])):
+        got = _nonzero(ps.counts(m.astype(np.float64)))
+        want = _nonzero(_explicit_resample_counts(E, labels, m))
+        for g, w in zip(got, want):
+            np.testing.assert_array_equal(g, w)
+    full = ps.counts()
+    assert int(full.genuine.sum()) == 3 + 1 + 6 + 0 + 3 and int(full.impostor.sum()) == 78 - 13
+
+
+def test_full_sample_values_agree_with_verification_module(rng):
+    # With every identity drawn once the paired bootstrap's metric is the plain all-pairs value.
+    labels, X, _ = _clusters(rng, 30, 7, 8, 0.8)
+    E = _unit(X).astype(np.float32)
+    ps = _PairScores(E, labels)
+    ref = verify_all_pairs(E, labels, fmr_targets=(0.01, 0.05), bootstrap=0)
+    counts = ps.counts()
+    assert equal_error_rate(counts)[0] == pytest.approx(ref["eer"], abs=1e-9)
+    assert fnmr_at_fmr(counts, 0.01)[0] == pytest.approx(ref["fnmr_at_fmr"]["0.01"]["fnmr"], abs=1e-9)
+    assert int(counts.genuine.sum()) == ref["genuine_pairs"] and int(counts.impostor.sum()) == ref["impostor_pairs"]
+
+
+# -- the paired comparison ---------------------------------------------------------------------
+@pytest.mark.parametrize("primary", ["eer", "fnmr@0.01"])
+def test_identical_runs_give_exactly_zero_and_not_larger_than_noise(rng, primary):
+    labels, X, _ = _clusters(rng, 40, 6, 16, 0.6)
+    out = paired_comparison({0.1: X, 0.4: X.copy()}, labels, primary, bootstrap=100, seed=3)
+    c = out["comparison"]
+    assert c["difference"] == 0.0 and c["ci"] == [0.0, 0.0]
+    assert c["larger_than_noise"] is False
+    assert "not larger than the noise" in c["verdict"]
+    assert c["best"]["margin"] == 0.1 and c["runner_up"]["margin"] == 0.4  # a tie goes to the smaller margin
+    assert c["replicates_used"] == 100
+
+
+def test_clearly_better_run_is_larger_than_noise(rng):
+    labels, good, centres = _clusters(rng, 40, 6, 16, 0.35)
+    poor = centres[labels] + 0.9 * rng.normal(size=good.shape)
+    out = paired_comparison({0.2: poor, 0.05: good}, labels, "eer", bootstrap=200, seed=0)
+    c = out["comparison"]
+    assert c["best"]["margin"] == 0.05 and c["runner_up"]["margin"] == 0.2
+    assert c["difference"] > 0 and c["ci"][0] > 0
+    assert c["larger_than_noise"] is True
+    assert "larger than the noise" in c["verdict"] and "not larger" not in c["verdict"]
+    assert c["difference"] == pytest.approx(out["runs"][0.2]["value"] - out["runs"][0.05]["value"], abs=0)
+
+
+def test_small_difference_is_within_noise(rng):
+    # Two noisy copies of one model: their difference is resampling noise, not a real effect.
+    labels, X, centres = _clusters(rng, 30, 5, 16, 0.8)
+    Y = X + 0.05 * rng.normal(size=X.shape)
+    c = paired_comparison({0.1: X, 0.2: Y}, labels, "eer", bootstrap=200)["comparison"]
+    assert c["difference"] > 0 and c["ci"][0] <= 0 <= c["ci"][1]
+    assert "not larger than the noise" in c["verdict"]
+
+
+def test_paired_interval_is_narrower_than_unpaired_intervals(rng):
+    # Pairing removes the noise the runs share: the difference's interval is much narrower than
+    # the two runs' own intervals (the reason for applying one resample to both runs).
+    labels, X, centres = _clusters(rng, 40, 6, 16, 0.7)
+    Y = centres[labels] + 0.75 * rng.normal(size=X.shape)
+    out = paired_comparison({0.1: X, 0.2: Y}, labels, "eer", bootstrap=200)
+    width = lambda ci: ci[1] - ci[0]  # noqa: E731
+    own = min(width(out["runs"][0.1]["ci"]), width(out["runs"][0.2]["ci"]))
+    assert width(out["comparison"]["ci"]) < own
+
+
+def test_unresolvable_primary_gives_no_comparison(rng):
+    labels, X, _ = _clusters(rng, 5, 4, 8, 0.5)  # 190 pairs: FMR 0.001 needs 3000 impostors
+    c = paired_comparison({0.1: X, 0.2: X}, labels, "fnmr@0.001", bootstrap=10)["comparison"]
+    assert c["best"] is None and c["difference"] is None and "no comparison" in c["verdict"]
+
+
+def test_paired_comparison_errors(rng):
+    labels, X, _ = _clusters(rng, 4, 3, 5, 0.5)
+    with pytest.raises(TripletkitError, match="non-empty dict"):
+        paired_comparison({}, labels)
+    with pytest.raises(TripletkitError, match="every run must embed the same held-out rows"):
+        paired_comparison({0.1: X, 0.2: X[:-1]}, labels)
+    with pytest.raises(TripletkitError, match="bootstrap must be a whole number >= 1"):
+        paired_comparison({0.1: X}, labels, bootstrap=0)
+
+
+# -- end to end --------------------------------------------------------------------------------
+def _strip_times(x):
+    if isinstance(x, dict):
+        return {k: _strip_times(v) for k, v in x.items() if k not in ("seconds", "out")}
+    if isinstance(x, list):
+        return [_strip_times(v) for v in x]
+    return x
+
+
+def test_fit_head_sweep_writes_everything_and_is_deterministic(tmp_path, feature_tables, capsys):
+    cfg = _write_config(tmp_path, FIT_HEAD)
+    out = tmp_path / "sweep-out"
+    result = sweep(cfg, out)
+    assert result["out"] == str(out)
+    on_disk = json.loads((out / "sweep.json").read_text())
+    assert on_disk == {k: v for k, v in result.items() if k != "out"}
+    assert result["mode"] == "fit-head" and result["margins"] == [0.1, 0.3]
+    for row in result["runs"]:
+        folder = out / "runs" / f"margin-{row['margin']!r}"
+        assert (folder / "report.json").is_file() and (folder / "report.md").is_file()
+        assert (folder / "head.npz").is_file()
+        m = row["metrics"]
+        assert set(m) == {"eer", "auc", "fnmr_at_fmr", "recall_at_1", "map_at_r", "purity", "nmi"}
+        assert set(m["fnmr_at_fmr"]) == {"0.01", "0.1"} and "ci" in m["fnmr_at_fmr"]["0.01"]
+        assert all(m[k] is not None for k in ("eer", "auc", "recall_at_1", "map_at_r", "purity", "nmi"))
+        report = json.loads((folder / "report.json").read_text())
+        assert m["eer"] == report["verification"]["eer"]
+        assert len(row["loss_curve"]) == 2 and len(row["epochs"]) == 2
+        assert set(row["mining"]) >= {"active_fraction", "regimes", "triplets"}
+        assert set(row["mining"]["regimes"]) == {"easy", "semi-hard", "hard"}
+        assert row["primary"]["metric"] == "fnmr@0.01"
+        # the ranking value is the report's own FNMR at that FMR (same counts, same definition)
+        assert row["primary"]["value"] == pytest.approx(m["fnmr_at_fmr"]["0.01"]["fnmr"], abs=1e-9)
+    comp = result["comparison"]
+    assert comp["best"]["margin"] in (0.1, 0.3) and comp["runner_up"]["margin"] in (0.1, 0.3)
+    assert comp["difference"] >= 0 and len(comp["ci"]) == 2 and comp["verdict"]
+    for p in ("metric_vs_margin.png", "roc_det.png", "loss.png"):
+        assert (out / p).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    md = (out / "sweep.md").read_text()
+    assert "## Verdict" in md and "runs/margin-0.1/report.md" in md and "Caution" in md
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".sweep-out")]  # no temp leftovers
+    err = capsys.readouterr().err
+    assert "run 1/2: margin 0.1" in err and "run 2/2: margin 0.3" in err and "epoch 2/2" in err
+    # the same config again, quietly: the same numbers and the same head weights, byte for byte
+    again = sweep(cfg, tmp_path / "again", quiet=True)
+    assert capsys.readouterr().err == ""
+    assert _strip_times(again) == _strip_times(result)
+    for row in result["runs"]:
+        name = f"runs/margin-{row['margin']!r}/head.npz"
+        assert (out / name).read_bytes() == (tmp_path / "again" / name).read_bytes()
+
+
+def test_checkpoints_identical_runs_exactly_zero(tmp_path, checkpoint_tables):
+    # The same photos embedded identically (one file in another row order): difference exactly 0.
+    text = CHECKPOINTS.format(a=checkpoint_tables["good"], b=checkpoint_tables["good_shuffled"])
+    result = sweep(_write_config(tmp_path, text), tmp_path / "out", quiet=True)
+    c = result["comparison"]
+    assert c["difference"] == 0.0 and c["ci"] == [0.0, 0.0] and c["larger_than_noise"] is False
+    assert "not larger than the noise" in c["verdict"]
+    assert result["runs"][0]["mining"] is None
+    assert not (tmp_path / "out" / "loss.png").exists()
+
+
+def test_checkpoints_clearly_better_run(tmp_path, checkpoint_tables, feature_tables):
+    text = CHECKPOINTS.format(a=checkpoint_tables["poor"], b=checkpoint_tables["good"])
+    # mining statistics from a training dump at each margin
+    text = text.replace('heldout = "%s"\n' % checkpoint_tables["good"],
+                        'heldout = "%s"\ntrain = "train.parquet"\n' % checkpoint_tables["good"])
+    result = sweep(_write_config(tmp_path, text), tmp_path / "out", quiet=True)
+    c = result["comparison"]
+    assert c["best"]["margin"] == 0.1 and c["runner_up"]["margin"] == 0.2
+    assert c["larger_than_noise"] is True and "not larger" not in c["verdict"]
+    rows = {r["margin"]: r for r in result["runs"]}
+    assert rows[0.1]["mining"]["triplets"] > 0 and rows[0.2]["mining"] is None
+    assert rows[0.1]["train"].endswith("train.parquet")
+
+
+def test_force_and_existing_output(tmp_path, checkpoint_tables):
+    text = CHECKPOINTS.format(a=checkpoint_tables["good"], b=checkpoint_tables["poor"])
+    cfg = _write_config(tmp_path, text)
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "keep.txt").write_text("old")
+    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+        sweep(cfg, out, quiet=True)
+    assert (out / "keep.txt").read_text() == "old"
+    sweep(cfg, out, force=True, quiet=True)
+    assert (out / "sweep.json").is_file() and not (out / "keep.txt").exists()
+
+
+def test_failure_mid_sweep_leaves_nothing(tmp_path, checkpoint_tables, monkeypatch):
+    import tripletkit.sweep as sw
+
+    def boom(*args, **kwargs):
+        raise KeyboardInterrupt
+    monkeypatch.setattr(sw, "_evaluate", boom)
+    text = CHECKPOINTS.format(a=checkpoint_tables["good"], b=checkpoint_tables["poor"])
+    with pytest.raises(KeyboardInterrupt):
+        sweep(_write_config(tmp_path, text), tmp_path / "out", quiet=True)
+    assert not (tmp_path / "out").exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+# -- config errors: one line, no output --------------------------------------------------------
+CONFIG_ERRORS = [
+    (FIT_HEAD.replace("epochs = 2", "epochz = 2"), r"\[head\]: unknown key 'epochz'"),
+    (FIT_HEAD.replace("margins = [0.3, 0.1]", "margins = [0.3, 0.0]"), r"margins\[1\] must be > 0.0"),
+    (FIT_HEAD.replace("margins = [0.3, 0.1]", "margins = [0.3, -0.1]"), r"margins\[1\] must be > 0.0"),
+    (FIT_HEAD.replace('train = "train.parquet"', 'train = "nope.parquet"'),
+     r"\[data\] train: table '.*nope.parquet' does not exist"),
+    (FIT_HEAD.replace('heldout = "heldout.parquet"', ""), r"fit-head mode needs \[data\] heldout"),
+    (FIT_HEAD.replace("margins = [0.3, 0.1]", ""), r"fit-head mode needs \[sweep\] margins"),
+    (FIT_HEAD.replace('primary = "fnmr@0.01"', 'primary = "fnmr@0.001"'),
+     r"FNMR at FMR 0.001, which is not among \[evaluation\] fmr \(0.01, 0.1\)"),
+    (FIT_HEAD.replace('primary = "fnmr@0.01"', 'primary = "recall"'), r"expected 'eer' or 'fnmr@<fmr>'"),
+    (FIT_HEAD.replace('mode = "fit-head"', 'mode = "checkpoint"'), r"mode must be one of fit-head, checkpoints"),
+    (FIT_HEAD + '[[sweep.runs]]\nmargin = 0.1\nheldout = "heldout.parquet"\n',
+     r"\[\[sweep.runs\]\] belongs to checkpoints mode"),
+    (FIT_HEAD.replace('mode = "fit-head"', 'mode = "checkpoints"'), r"checkpoints mode needs one \[\[sweep.runs\]\]"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nmargin = 0.1\nheldout = "missing.parquet"\n',
+     r"runs\[0\].heldout: table '.*missing.parquet' does not exist"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nmargin = 0\nheldout = "heldout.parquet"\n',
+     r"runs\[0\]\.margin must be > 0.0"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nheldout = "heldout.parquet"\n',
+     r"runs\[0\]: key 'margin' is required"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nmargin = 0.1\nheldout = "heldout.parquet"\n'
+     '[[sweep.runs]]\nmargin = 0.1\nheldout = "train.parquet"\n', r"two \[\[sweep.runs\]\] have margin 0.1"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\nmargins = [0.1, 0.2]\n[[sweep.runs]]\nmargin = 0.1\n'
+     'heldout = "heldout.parquet"\n', r"\[sweep\] margins \[0.1, 0.2\] differ from the margins of \[\[sweep.runs\]\]"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nmargin = 0.1\nheldout = "heldout.parquet"\n'
+     '[[sweep.runs]]\nmargin = 0.2\nheldout = "train.parquet"\n',
+     r"held-out table of margin 0.2 .* has other rows than that of margin 0.1"),
+    ('[sweep]\nmode = "checkpoints"\nprimary = "eer"\n[[sweep.runs]]\nmargin = 0.1\nheldout = "heldout.parquet"\n'
+     '[data]\ntrain = "train.parquet"\n', r"\[data\] belongs to fit-head mode"),
+    (FIT_HEAD + 'pairs = "pairs.parquet"\n', r"\[evaluation\] pairs: a sweep compares runs on all pairs"),
+    ("[sweep\nmargins = [0.1]\n", r"is not valid TOML"),
+]
+
+
+@pytest.mark.parametrize("text, match", CONFIG_ERRORS)
+def test_config_errors_one_line_no_output(tmp_path, feature_tables, text, match):
+    cfg = _write_config(tmp_path, text)
+    out = tmp_path / "out"
+    with pytest.raises(TripletkitError, match=match) as info:
+        sweep(cfg, out, quiet=True)
+    assert "\n" not in str(info.value)
+    assert not out.exists() and not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_missing_config_file(tmp_path):
+    with pytest.raises(TripletkitError, match="does not exist"):
+        sweep(tmp_path / "none.toml", tmp_path / "out")
+    assert not (tmp_path / "out").exists()
+
+
+def test_demo_config_parses_and_names_existing_tables():
+    from pathlib import Path
+
+    from tripletkit.config import load_config
+
+    path = Path(__file__).resolve().parents[1] / "configs" / "sweep.toml"
+    cfg = load_config(path)
+    assert cfg.sweep.mode == "fit-head" and all(m > 0 for m in cfg.sweep.margins)
+    assert Path(cfg.data.train).is_file() and Path(cfg.data.heldout).is_file()
+    # every key of the file carries a comment line above it
+    lines = path.read_text().splitlines()
+    for i, line in enumerate(lines):
+        if "=" in line and not line.lstrip().startswith("#"):
+            assert lines[i - 1].lstrip().startswith("#"), f"key without a comment: {line!r}"
