@@ -10,11 +10,11 @@ Three ways to build the table:
 
 * :func:`verify_all_pairs` scores every pair of distinct rows of an embedding matrix. The pairs are
   never listed: a block of rows is multiplied with all later rows (upper triangle, ``i < j``) and the
-  products are counted into a fixed histogram of ``2**21`` bins of width ``2**-20`` over [-1, 1].
-  A second pass over the same blocks collects the exact scores that fall into the few bins holding
-  an operating point (each FMR target, the EER crossing) and, within a budget, every bin that holds
-  both genuine and impostor scores, so that the operating points and the AUC are exactly what every
-  score would give. Memory is O(n*d + block*n).
+  products are counted into a fixed histogram of ``2**19`` bins of width ``2**-18`` over [-1, 1].
+  The exact scores of the few bins that hold an operating point (each FMR target, the EER
+  crossing) are then listed, from the highest impostor scores kept during the counting pass
+  when those reach low enough, else by a second pass over the same blocks; so the operating
+  points are exactly what every score would give. Memory is O(n*d + block*n).
 * :func:`verify_pairs` scores a fixed protocol: a list of (left, right) row pairs.
 * :func:`verify_scores` takes genuine and impostor scores directly.
 
@@ -620,8 +620,10 @@ def _materialised(gen, imp, gen_id, imp_a, imp_b, n_ident, gen_grp, imp_grp, gro
     elif n_ident < 2:
         why = "fewer than 2 identities; no subject-level interval"
     else:
-        cand = np.unique(imp)
-        cand_ge = n_imp - np.searchsorted(np.sort(imp), cand, side="left")
+        imp_sorted = np.sort(imp)
+        first = np.r_[True, imp_sorted[1:] != imp_sorted[:-1]]
+        cand = imp_sorted[first]
+        cand_ge = n_imp - np.flatnonzero(first)  # impostors at or above each distinct value
         b_idx = _boundaries(cand_ge, n_imp, [x for x in targets if _resolvable(x, n_imp)[0]] or targets,
                             per_decade)
         bvals = cand[b_idx]
@@ -631,7 +633,7 @@ def _materialised(gen, imp, gen_id, imp_a, imp_b, n_ident, gen_grp, imp_grp, gro
         gen_lt_c = _lt_from_cells(gen_id, np.searchsorted(bvals, gen, side="right") - 1, n_ident, w)
         imp_c = np.bincount(imp_a, minlength=n_ident) + np.bincount(imp_b, minlength=n_ident)
         gen_c = np.bincount(gen_id, minlength=n_ident)
-        imp_ge = n_imp - np.searchsorted(np.sort(imp), bvals, side="left")
+        imp_ge = cand_ge[b_idx]
         ci_res = _bootstrap_fnmr(imp_ge_c, imp_ge, imp_c, n_imp, gen_lt_c, gen_c,
                                  targets, bootstrap, confidence, seed)
     ci = _ci_table(targets, n_imp, ci_res, bootstrap, why)
@@ -800,23 +802,27 @@ def verify_pairs(embeddings, labels, left, right, *, same=None, groups=None,
 
 
 # ---------------------------------------------------------------------------------------------
-# All pairs: blocked matrix product, histogram, exact second pass
+# All pairs: blocked matrix product, histogram, exact values of the bins that matter
 # ---------------------------------------------------------------------------------------------
 
-# Embeddings are scaled by 2**10 so that the product of two rows is 2**20 * cosine: scaling by a power
-# of two changes no rounding, so the scaled products are exactly the float32 cosines times 2**20.
-_EMB_SCALE = np.float32(2.0**10)
-_SCORE_SCALE = 2.0**20
-# bin key = trunc(float32(2**20 * s + _OFFSET)): bins of width 2**-20, keys >= 1 for s >= -1.0039.
-_OFFSET = np.float32(2**20 + 2**12)
+# Embeddings are scaled by 2**9 so that the product of two rows is 2**18 * cosine: scaling by a power
+# of two changes no rounding, so the scaled products are exactly the float32 cosines times 2**18.
+_EMB_SCALE = np.float32(2.0**9)
+_SCORE_SCALE = 2.0**18
+# bin key = trunc(float32(2**18 * s + _OFFSET)): bins of width 2**-18 (about 3.8e-6), keys >= 1 for
+# s >= -1.0039. 2**19 bins (4 MiB of int64 per histogram) count faster than 2**21 finer ones, and
+# the exact values of the few bins that matter are listed anyway.
+_OFFSET = np.float32(2**18 + 2**10)
 # Entries of a block that are not pairs (j <= i) get a value whose key is 0, a bin never reported.
-_SENTINEL = np.float32(-(2**20 + 2**12) + 0.5)
-_NBINS = 2**21 + 2**13
+_SENTINEL = np.float32(-(2**18 + 2**10) + 0.5)
+_NBINS = 2**19 + 2**11
 _COLLECT = np.uint8(1)
 _WINDOW = np.uint8(2)
 # Above this share of scores at or above the lowest bin the second pass needs, it looks every
-# score's bin up in a table instead of comparing and listing positions (measured: bench/).
+# score's bin up in a table instead of comparing and listing positions.
 _TABLE_SHARE = 0.3
+# Share of the memory budget that the impostor scores kept in the first pass may take.
+_KEEP_SHARE = 0.5
 
 
 def _keys_of(scaled, out=None):
@@ -832,10 +838,11 @@ def _bin_value(k):
     return (np.asarray(k, np.float64) + 0.5 - float(_OFFSET)) / _SCORE_SCALE
 
 
-def _hist_into(keys, acc):
+def _hist_into(keys, acc, tmp=None):
     """acc += histogram of int32 keys. faiss.ivec_hist is a plain C counting loop (about 2x np.bincount)."""
     flat = keys.reshape(-1)
-    tmp = np.empty(_NBINS, np.int32)
+    if tmp is None:
+        tmp = np.empty(_NBINS, np.int32)
     nout = faiss.ivec_hist(flat.size, faiss.swig_ptr(flat), _NBINS, faiss.swig_ptr(tmp))
     if nout:
         raise RuntimeError(f"{nout} scores fell outside the histogram; embeddings are not unit vectors")
@@ -843,7 +850,7 @@ def _hist_into(keys, acc):
 
 
 def _ordered(v):
-    """float32 -> int64 with the same order (for searching float32 values by bisection)."""
+    """float32 -> int with the same order (for searching float32 values by bisection)."""
     bits = int(np.float32(v).view(np.int32))
     return bits if bits >= 0 else -(bits & 0x7FFFFFFF)
 
@@ -875,15 +882,17 @@ class _Blocks:
         self.gcodes = None if gcodes is None else gcodes[order]
         self.xs = np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32)
         n = self.n = x.shape[0]
+        # float32 product + int32 key (+ one byte of selection) per score of a block
+        block_rows_budget = max(1, int(memory_budget // (9 * max(n, 1))))
         if block_rows is None:
-            # float32 product + int32 key (+ one byte of selection) per score of a block
-            block_rows = int(memory_budget // (9 * max(n, 1)))
+            # the leading square of each block is computed in full but only its upper half is
+            # used: keep blocks to a sixteenth of the rows (at least 256) so that little is wasted
+            block_rows = min(block_rows_budget, max(256, n // 16))
         self.b = int(max(1, min(n, block_rows, (2**31 - 1) // max(n, 1))))
         self.sizes = np.bincount(self.codes)
         self.starts = np.concatenate([[0], np.cumsum(self.sizes)[:-1]])
         self._s = np.empty(self.b * n, np.float32)
         self.kbuf = np.empty(self.b * n, np.int32)
-        self._lower = np.tril(np.ones((self.b, self.b), bool))
 
     def __iter__(self):
         """Yield (r0, scaled scores (rows, n - r0)). Identical calls, so identical floats, every pass."""
@@ -893,7 +902,8 @@ class _Blocks:
             rows, m = r1 - r0, n - r0
             s = self._s[: rows * m].reshape(rows, m)
             np.matmul(self.xs[r0:r1], self.xs[r0:].T, out=s)
-            np.copyto(s[:, :rows], _SENTINEL, where=self._lower[:rows, :rows])
+            for a in range(rows):  # j <= i: not a pair of the upper triangle
+                s[a, : a + 1] = _SENTINEL
             yield r0, s
 
     def genuine(self, r0, s):
@@ -919,33 +929,113 @@ class _Blocks:
                 grps.append(np.where(gr == gc, gr, -1)[keep])
         return vals, ids, grps
 
+    def impostors_at_or_above(self, r0, s, smin, chunk):
+        """(scaled values, rows, cols) of this block's impostor scores >= smin, in row chunks."""
+        rows, m = s.shape
+        step = max(1, int(chunk // max(m, 1)))
+        for a in range(0, rows, step):
+            ss = s[a : a + step]
+            sel = np.flatnonzero(ss >= smin)
+            if sel.size == 0:
+                continue
+            row, col = np.divmod(sel, m)
+            row += r0 + a
+            col += r0
+            imp = self.codes[row] != self.codes[col]
+            yield ss.reshape(-1)[sel[imp]], row[imp], col[imp]
 
-def _pass_one(blocks):
+
+class _TopImpostors:
+    """Keep, during the first pass, every impostor score in the bins at or above a rising floor.
+
+    The floor is a bin. It starts at the highest bin edge with at least ``keep`` impostor scores
+    of the first block at or above it, and whenever more than ``2 * keep`` scores are kept it
+    moves up to the bin of the ``keep``-th highest kept score, dropping the kept scores below.
+    Either way at least ``keep`` impostor scores seen so far lie at or above it, so it never
+    passes the bin of the ``keep``-th highest impostor score of the whole table; and the kept set
+    is at every moment exactly the impostor scores seen in bins from the floor up, so at the end
+    every bin from the floor up is complete.
+    """
+
+    def __init__(self, keep, chunk):
+        self.keep = int(keep)
+        self.chunk = chunk
+        self.floor = 1  # lowest bin kept; 1 = every pair
+        self.vals, self.keys, self.rows, self.cols = [], [], [], []
+        self.count = 0
+
+    def start(self, imp_hist_first_block):
+        ge = np.cumsum(imp_hist_first_block[::-1])[::-1]
+        enough = np.flatnonzero(ge >= self.keep)
+        if enough.size:
+            self.floor = max(self.floor, int(enough[-1]))
+
+    def visit(self, blocks, r0, s):
+        smin = _lowest_scaled_in(self.floor)
+        for v, r, c in blocks.impostors_at_or_above(r0, s, smin, self.chunk):
+            self.vals.append(v)
+            self.keys.append(_keys_of(v))
+            self.rows.append(r.astype(np.int32))
+            self.cols.append(c.astype(np.int32))
+            self.count += v.size
+        if self.count > 2 * self.keep:
+            k = np.concatenate(self.keys)
+            floor = int(np.partition(k, k.size - self.keep)[k.size - self.keep])
+            up = k >= floor
+            self.vals = [np.concatenate(self.vals)[up]]
+            self.rows = [np.concatenate(self.rows)[up]]
+            self.cols = [np.concatenate(self.cols)[up]]
+            self.keys = [k[up]]
+            self.count = int(up.sum())
+            self.floor = floor
+
+    def result(self):
+        if not self.vals:
+            return np.empty(0, np.int32), np.empty(0, np.float32), np.empty(0, np.int64), np.empty(0, np.int64)
+        return (np.concatenate(self.keys), np.concatenate(self.vals),
+                np.concatenate(self.rows).astype(np.int64), np.concatenate(self.cols).astype(np.int64))
+
+    def complete_from(self):
+        """Lowest bin all of whose impostor scores were kept."""
+        return self.floor
+
+
+def _pass_one(blocks, top):
     hist = np.zeros(_NBINS, np.int64)
+    tmp = np.empty(_NBINS, np.int32)
     gvals, gids, ggrps = [], [], []
+    first = True
     for r0, s in blocks:
         k = _keys_of(s, blocks.kbuf[: s.size].reshape(s.shape))
-        _hist_into(k, hist)
+        _hist_into(k, hist, tmp)
         v, i, g = blocks.genuine(r0, s)
         gvals += v
         gids += i
         ggrps += g
+        if top is not None:
+            if first:
+                imp = tmp.astype(np.int64)
+                if v:
+                    imp -= np.bincount(_keys_of(np.concatenate(v)), minlength=_NBINS)
+                imp[0] = 0  # the key of entries that are not pairs
+                top.start(imp)
+                first = False
+            top.visit(blocks, r0, s)
     gval = np.concatenate(gvals) if gvals else np.empty(0, np.float32)
     gid = np.concatenate(gids) if gids else np.empty(0, np.int64)
     ggrp = np.concatenate(ggrps) if ggrps else None
     return hist, gval, gid, ggrp
 
 
-class _PassTwo:
-    """Second pass: collect exact impostor scores of chosen bins; count a window per identity/group.
+class _Refiner:
+    """Collect exact impostor scores of chosen bins; count a window per identity and per group.
 
-    ``code[k]`` says what to do with a score in bin k (``_COLLECT``, ``_WINDOW`` or both). When the
-    chosen bins all lie high (few scores at or above the lowest), one float comparison per score
-    finds the candidates; otherwise every score's bin is looked up in a table.
+    ``code[k]`` says what to do with an impostor score in bin k (``_COLLECT``, ``_WINDOW`` or
+    both). Scores arrive either from a second pass over the blocks (:meth:`visit`) or from the
+    impostors kept in the first pass (:meth:`process`).
     """
 
-    def __init__(self, code, kwin, cell_of, n_ident, n_cells, gcell_of, n_groups, n_gcells, sel_budget,
-                 use_table):
+    def __init__(self, code, kwin, cell_of, n_ident, n_cells, gcell_of, n_groups, n_gcells):
         self.code = code
         self.want = code != 0
         nz = np.flatnonzero(code)
@@ -953,88 +1043,83 @@ class _PassTwo:
         self.smin = _lowest_scaled_in(self.kmin) if nz.size else None
         self.kwin = kwin
         self.cell_of = cell_of
-        self.n_ident, self.n_cells = n_ident, n_cells
-        self.gcell_of, self.n_groups, self.n_gcells = gcell_of, n_groups, n_gcells
-        self.sel_budget = sel_budget
-        self.use_table = use_table
+        self.n_cells = n_cells
+        self.gcell_of, self.n_gcells = gcell_of, n_gcells
         self.values, self.keys, self.pgroup = [], [], []
-        self.win_a = np.zeros(n_ident * n_cells, np.int64) if cell_of is not None else None
-        self._pending_b = []
+        self.win = np.zeros(n_ident * n_cells, np.int64) if cell_of is not None else None
+        self._pending = []
         self._pending_n = 0
         self.gwin = np.zeros(n_groups * n_gcells, np.int64) if gcell_of is not None else None
         self.examined = 0  # scores looked at more closely (for benchmarks)
 
     def _flush(self):
-        if self._pending_b:
-            idx = np.concatenate(self._pending_b)
-            self.win_a += np.bincount(idx, minlength=self.win_a.size)
-            self._pending_b, self._pending_n = [], 0
+        if self._pending:
+            self.win += np.bincount(np.concatenate(self._pending), minlength=self.win.size)
+            self._pending, self._pending_n = [], 0
 
-    def visit(self, blocks, r0, s):
+    def visit(self, blocks, r0, s, chunk, use_table):
+        """Second pass over one block."""
         if self.smin is None:
             return
+        if not use_table:
+            for v, row, col in blocks.impostors_at_or_above(r0, s, self.smin, chunk):
+                self.process(blocks, _keys_of(v), v, row, col)
+            return
         rows, m = s.shape
-        step = max(1, int(self.sel_budget // max(m, 1)))
+        step = max(1, int(chunk // max(m, 1)))
         for a in range(0, rows, step):
             ss = s[a : a + step]
-            flat = ss.reshape(-1)
-            if self.use_table:
-                kk = _keys_of(ss, blocks.kbuf[: ss.size].reshape(ss.shape))
-                sel = np.flatnonzero(self.want[kk])
-                if sel.size == 0:
-                    continue
-                ksel = kk.reshape(-1)[sel]
-            else:
-                sel = np.flatnonzero(ss >= self.smin)
-                if sel.size == 0:
-                    continue
-                ksel = _keys_of(flat[sel])
-                keep = self.want[ksel]
-                sel, ksel = sel[keep], ksel[keep]
-            self.examined += sel.size
+            kk = _keys_of(ss, blocks.kbuf[: ss.size].reshape(ss.shape))
+            sel = np.flatnonzero(self.want[kk])
+            if sel.size == 0:
+                continue
             row, col = np.divmod(sel, m)
             row += r0 + a
             col += r0
-            ia, ib = blocks.codes[row], blocks.codes[col]
-            imp = ia != ib
-            sel, ksel, row, col, ia, ib = sel[imp], ksel[imp], row[imp], col[imp], ia[imp], ib[imp]
-            csel = self.code[ksel]
-            pg = None
-            if blocks.gcodes is not None:
-                ga, gb = blocks.gcodes[row], blocks.gcodes[col]
-                pg = np.where(ga == gb, ga, -1)
-            take = (csel & _COLLECT) != 0
-            if take.any():
-                self.values.append(flat[sel[take]])
-                self.keys.append(ksel[take])
-                if pg is not None:
-                    self.pgroup.append(pg[take])
-            win = (csel & _WINDOW) != 0
-            if not win.any():
-                continue
-            kw = ksel[win] - self.kwin
-            if self.cell_of is not None:
-                cell = self.cell_of[kw]
-                ok = cell >= 0
-                cell, wa, wb = cell[ok], ia[win][ok], ib[win][ok]
-                if cell.size:
-                    # row identities of a block are few and contiguous: count them at once; column
-                    # identities are not, so those are buffered and counted in large batches
-                    lo, w = int(wa.min()), self.n_cells
-                    part = np.bincount((wa - lo) * w + cell)
-                    self.win_a[lo * w : lo * w + part.size] += part
-                    self._pending_b.append(wb * w + cell)
-                    self._pending_n += cell.size
-                    if self._pending_n > (1 << 24):
-                        self._flush()
-            if self.gcell_of is not None:
-                g = pg[win]
-                same = g >= 0
-                self.gwin += np.bincount(g[same] * self.n_gcells + self.gcell_of[kw[same]],
-                                         minlength=self.gwin.size)
+            imp = blocks.codes[row] != blocks.codes[col]
+            sel = sel[imp]
+            self.process(blocks, kk.reshape(-1)[sel], ss.reshape(-1)[sel], row[imp], col[imp])
+
+    def process(self, blocks, ksel, vals, row, col):
+        """Impostor scores (keys, scaled values, rows, cols), any order, each seen once."""
+        keep = self.want[ksel]
+        ksel, vals, row, col = ksel[keep], vals[keep], row[keep], col[keep]
+        self.examined += ksel.size
+        if ksel.size == 0:
+            return
+        csel = self.code[ksel]
+        pg = None
+        if blocks.gcodes is not None:
+            ga, gb = blocks.gcodes[row], blocks.gcodes[col]
+            pg = np.where(ga == gb, ga, -1)
+        take = (csel & _COLLECT) != 0
+        if take.any():
+            self.values.append(vals[take])
+            self.keys.append(ksel[take])
+            if pg is not None:
+                self.pgroup.append(pg[take])
+        win = (csel & _WINDOW) != 0
+        if not win.any():
+            return
+        kw = ksel[win].astype(np.int64) - self.kwin
+        if self.cell_of is not None:
+            cell = self.cell_of[kw]
+            ok = cell >= 0
+            cell = cell[ok]
+            w = self.n_cells
+            for ident in (blocks.codes[row[win][ok]], blocks.codes[col[win][ok]]):
+                # a pair counts for both of its identities; counted in large batches
+                self._pending.append(ident * w + cell)
+                self._pending_n += cell.size
+            if self._pending_n > (1 << 24):
+                self._flush()
+        if self.gcell_of is not None:
+            g = pg[win]
+            same = g >= 0
+            self.gwin += np.bincount(g[same] * self.n_gcells + self.gcell_of[kw[same]], minlength=self.gwin.size)
 
     def finish(self):
-        if self.win_a is not None:
+        if self.win is not None:
             self._flush()
         vals = np.concatenate(self.values) if self.values else np.empty(0, np.float32)
         keys = np.concatenate(self.keys) if self.keys else np.empty(0, np.int32)
@@ -1052,9 +1137,20 @@ def _last_nonneg_bin(nonempty, imp_hist, gen_hist, n_gen, n_imp):
     return int(nonempty[j]), nxt
 
 
+def _auc_bins(both, gen_hist, imp_hist, budget, lowest=None):
+    """Bins holding genuine and impostor scores to list for an exact AUC, most valuable first."""
+    if lowest is not None:
+        both = both[both >= lowest]
+    cost = imp_hist[both]
+    if cost.sum() <= budget:
+        return both
+    order = np.argsort(-(gen_hist[both] * imp_hist[both]), kind="stable")
+    fit = np.cumsum(cost[order]) <= budget
+    return np.sort(both[order[fit]])
+
 def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR_TARGETS, bootstrap=200,
-                 confidence=0.95, seed=0, curve_points=512, memory_budget=256 * 2**20, block_rows=None,
-                 exact_auc=True, auc_budget=2**24, grid_per_decade=40):
+                     confidence=0.95, seed=0, curve_points=512, memory_budget=256 * 2**20, block_rows=None,
+                     exact_auc="auto", auc_budget=2**24, grid_per_decade=40):
     """Verification report over every pair of distinct rows, by blocked matrix product and counting.
 
     Parameters
@@ -1078,15 +1174,19 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     curve_points : int, default 512
         About how many ROC/DET points to report (even in log FMR and in FNMR).
     memory_budget : int, default 256 MiB
-        Bytes for the block buffers (9 bytes per score of a block); sets the rows per block.
+        Bytes for the block buffers (9 bytes per score of a block) and for the impostor scores
+        kept in the first pass (16 bytes each).
     block_rows : int, optional
         Rows per block, overriding ``memory_budget``.
-    exact_auc : bool, default True
-        Collect, in the second pass, the exact impostor scores of every histogram bin that also
-        holds genuine scores, so that the AUC is exact.
+    exact_auc : {"auto", True, False}, default "auto"
+        ``True``: list the exact impostor scores of every histogram bin that also holds genuine
+        scores (within ``auc_budget``), so that the AUC is exact, even if that takes a second
+        pass. ``"auto"``: do so when a second pass runs anyway, else refine only the bins the
+        first pass kept. ``False``: never. Unlisted bins count their pairs as ties and
+        ``auc_error_bound`` bounds the error.
     auc_budget : int, default 2**24
-        Most impostor scores to collect for the AUC. When more would be needed, the bins with the
-        most (genuine x impostor) pairs are refined first and ``auc_error_bound`` bounds the rest.
+        Most impostor scores to list for the AUC; the bins with the most (genuine x impostor)
+        pairs first.
     grid_per_decade : int, default 40
         FMR levels per decade of the bootstrap's threshold grid (fewer when identities x levels
         would pass 8 million counts).
@@ -1100,22 +1200,25 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         [lo, hi] or None, "resolvable", "reason"}}``; ``roc``: ``{"fpr", "tpr", "threshold"}``
         and ``det``: ``{"fmr", "fnmr"}`` (downsampled lists); ``score_histogram``: ``{"edges",
         "genuine", "impostor"}`` (200 bins over [-1, 1]); ``bootstrap`` (settings and method);
-        ``groups`` when groups are given. Plain Python numbers; ``None`` with a ``reason`` when
-        a value cannot be computed. No genuine or no impostor pairs gives a warning and ``None``
-        values.
+        ``passes`` (1 or 2); ``groups`` when groups are given. Plain Python numbers; ``None``
+        with a ``reason`` when a value cannot be computed. No genuine or no impostor pairs gives
+        a warning and ``None`` values.
 
     Notes
     -----
-    Exactness. Every score is the float32 product of two rows, computed once per pass in blocks
-    of identical shape, so both passes see the same floats. The histogram counts are exact; FMR
-    and FNMR are exact at every bin edge, and the second pass lists the exact impostor scores of
-    the bins holding each operating point (the bin of the (m+1)-th highest impostor score for
-    target x, m = floor(x * impostors), and the next non-empty bin; the bin holding the EER
-    crossing and the next non-empty bin). Genuine scores are few and always kept exactly. So
-    FNMR at FMR, its threshold and the EER equal what sorting every score would give. The AUC
-    is exact when every bin holding both genuine and impostor scores was listed (``auc_exact``);
-    a bin that was not contributes its pairs as ties, off by at most half its genuine x
-    impostor pairs, summed in ``auc_error_bound``.
+    Exactness. Every score is the float32 product of two rows, computed in blocks of identical
+    shape on every pass, so every pass sees the same floats. The first pass counts all scores
+    into ``2**19`` bins of width ``2**-18``, keeps every genuine score (they are few) and keeps
+    the highest impostor scores (as many as the operating points and the bootstrap window
+    need, within the memory budget). Counts are exact, so FMR and FNMR are exact at every bin
+    edge; what is left is the order inside the bins that hold an operating point: the bin of
+    the (m+1)-th highest impostor score for target x (m = floor(x * impostors)) and the next
+    non-empty bin; the bin holding the EER crossing and the next non-empty bin. When the kept
+    impostors cover all of these bins, their exact scores come from there (one pass); otherwise a
+    second pass lists them. So FNMR at FMR, its threshold and the EER equal what sorting every
+    score would give. The AUC is exact when every bin holding both genuine and impostor scores
+    was listed (``auc_exact``); a bin that was not contributes its pairs as ties, off by at most
+    half its genuine x impostor pairs, summed in ``auc_error_bound``.
 
     Intervals (``ci``). Identities are drawn with replacement ``bootstrap`` times (seeded). In a
     replicate with multiplicities ``w_c``: a genuine pair of identity c counts ``w_c`` times;
@@ -1123,15 +1226,16 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     themselves); the impostor count at a threshold, exactly ``sum_{c<c'} w_c w_c' N_cc'``, is
     taken to first order in ``w - 1`` as ``sum_c w_c N_c - N`` (``N_c``: impostor pairs involving
     c), with the same expansion for the impostor total. This needs only per-identity counts at a
-    grid of thresholds (``grid_per_decade`` FMR levels a decade from target/4 to 4 x target, counted in the
-    second pass), not every identity pair; the quadratic term dropped is small when no small set
-    of identity pairs holds most high-scoring impostors. Each replicate's threshold is the lowest
-    grid threshold with FMR <= x and its FNMR is exact for that threshold. The interval is the
-    percentile interval of the replicates. Like every percentile interval over few clusters it
-    covers a little less than nominal: about 0.90-0.94 for a nominal 0.95 with 100 identities in
-    the simulation of tests/test_verification.py.
+    grid of thresholds (``grid_per_decade`` FMR levels a decade from target/4 to 4 x target),
+    not every identity pair; the quadratic term dropped is small when no small set of identity
+    pairs holds most high-scoring impostors (in the simulation tests it moves the interval by
+    far less than its width). Each replicate's threshold is the lowest grid threshold with
+    FMR <= x and its FNMR is exact for that threshold. The interval is the percentile interval of
+    the replicates. Like every percentile interval over few clusters it covers a little less
+    than nominal: about 0.90-0.94 for a nominal 0.95 with 100 identities in the simulation of
+    tests/test_verification.py.
 
-    Memory is O(n*d + block*n + bins + genuine pairs + identities * grid).
+    Memory is O(n*d + block*n + bins + genuine pairs + kept impostors + identities * grid).
 
     References
     ----------
@@ -1148,6 +1252,8 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         raise TripletkitError(f"block_rows must be a whole number >= 1, got {block_rows!r}")
     if not (isinstance(memory_budget, (int, np.integer)) and memory_budget >= 1 << 20):
         raise TripletkitError(f"memory_budget must be a number of bytes >= 1 MiB, got {memory_budget!r}")
+    if exact_auc not in ("auto", True, False):
+        raise TripletkitError(f"exact_auc must be 'auto', True or False, got {exact_auc!r}")
     x = as_embeddings(embeddings)
     _check_unit(x, "embeddings")
     n = x.shape[0]
@@ -1161,9 +1267,17 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         why = ("no genuine pairs: every identity has one row" if n_gen == 0
                else "no impostor pairs: all rows share one identity")
         return _degenerate(n_gen, n_imp, targets, why)
+    resolvable = [x_ for x_ in targets if _resolvable(x_, n_imp)[0]]
+    do_ci = bootstrap > 0 and k_ident >= 2 and bool(resolvable)
+
+    # how many of the highest impostor scores the operating points and the bootstrap window need
+    top_share = max(resolvable) * (4.0 if do_ci else 1.0) if resolvable else 0.0
+    keep = int(math.ceil(1.1 * top_share * n_imp)) + 4096
+    chunk = max(1 << 16, memory_budget // 64)
+    top = _TopImpostors(keep, chunk) if 16 * keep <= _KEEP_SHARE * memory_budget else None
 
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
-    hist_all, gval, gid, ggrp = _pass_one(blocks)
+    hist_all, gval, gid, ggrp = _pass_one(blocks, top)
     gkey = _keys_of(gval).astype(np.int64)
     gval = gval.astype(np.float64) / _SCORE_SCALE  # exact: undoes a power-of-two scaling
     gen_hist = np.bincount(gkey, minlength=_NBINS).astype(np.int64)
@@ -1171,19 +1285,17 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     imp_hist[0] = 0
     if gval.size != n_gen or int(imp_hist.sum()) != n_imp:
         raise RuntimeError("internal error: pair counts of the blocked pass do not add up")
-
-    resolvable = [x_ for x_ in targets if _resolvable(x_, n_imp)[0]]
     nonempty = np.flatnonzero(gen_hist + imp_hist)
     imp_ge_bin = np.cumsum(imp_hist[::-1])[::-1]  # impostors in bin k and above
 
     # bins to list exactly: each operating point's bin and the next non-empty bin
-    collect = set()
+    needed = set()
 
     def with_next(b):
-        collect.add(int(b))
+        needed.add(int(b))
         pos = np.searchsorted(nonempty, b, side="right")
         if pos < nonempty.size:
-            collect.add(int(nonempty[pos]))
+            needed.add(int(nonempty[pos]))
 
     op_bin = {}
     for t in resolvable:
@@ -1194,23 +1306,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         b = int(np.flatnonzero(imp_ge_bin >= mx + 1)[-1])
         op_bin[t] = b
         with_next(b)
-    eb, enext = _last_nonneg_bin(nonempty, imp_hist, gen_hist, n_gen, n_imp)
-    collect.add(eb)
-    if enext is not None:
-        collect.add(enext)
-    both = np.flatnonzero((gen_hist > 0) & (imp_hist > 0))
-    auc_bins = np.empty(0, np.int64)
-    if exact_auc and both.size:
-        cost = imp_hist[both]
-        if cost.sum() <= auc_budget:
-            auc_bins = both
-        else:
-            order = np.argsort(-(gen_hist[both] * imp_hist[both]), kind="stable")
-            fit = np.cumsum(cost[order]) <= auc_budget
-            auc_bins = np.sort(both[order[fit]])
-    code = np.zeros(_NBINS, np.uint8)
-    collect_bins = np.unique(np.concatenate([np.fromiter(collect, np.int64, len(collect)), auc_bins]))
-    code[collect_bins] = _COLLECT
+    with_next(_last_nonneg_bin(nonempty, imp_hist, gen_hist, n_gen, n_imp)[0])
 
     # bootstrap grid: candidate thresholds are the lower edges of non-empty impostor bins
     ci_res, why = {}, None
@@ -1231,6 +1327,21 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     ob = np.unique(np.fromiter(op_bin.values(), np.int64, len(op_bin)))
     if gvalues is not None and ob.size:
         kwin = min(kwin, int(ob[0]))
+
+    # one pass suffices when the impostors kept in the first pass cover every bin needed
+    covered = top.complete_from() if top is not None else _NBINS + 1
+    one_pass = min(list(needed) + [kwin]) >= covered
+    both = np.flatnonzero((gen_hist > 0) & (imp_hist > 0))
+    if exact_auc is True or (exact_auc == "auto" and not one_pass):
+        auc_bins = _auc_bins(both, gen_hist, imp_hist, auc_budget)
+        one_pass = one_pass and (auc_bins.size == 0 or int(auc_bins[0]) >= covered)
+    elif exact_auc == "auto":
+        auc_bins = _auc_bins(both, gen_hist, imp_hist, auc_budget, lowest=covered)
+    else:
+        auc_bins = np.empty(0, np.int64)
+    collect_bins = np.unique(np.concatenate([np.fromiter(needed, np.int64, len(needed)), auc_bins]))
+    code = np.zeros(_NBINS, np.uint8)
+    code[collect_bins] = _COLLECT
     cell_of = gcell_of = None
     n_gcells = 2 * ob.size + 1
     if kwin < _NBINS:
@@ -1244,21 +1355,25 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
             # group cells: below the first op bin, the op bin, between, the next op bin, ...
             gcell_of = np.searchsorted(ob, ks, side="right") + np.searchsorted(ob, ks, side="left")
 
-    # one comparison per score finds the candidates when few scores lie at or above the lowest
-    # chosen bin; otherwise looking every score's bin up in a table is cheaper
-    nz = np.flatnonzero(code)
-    above = int(hist_all[int(nz[0]) :].sum()) if nz.size else 0
-    p2 = _PassTwo(code, kwin, cell_of, k_ident, 0 if bkeys is None else bkeys.size, gcell_of,
-                  0 if gvalues is None else gvalues.size, n_gcells, max(1 << 16, memory_budget // 64),
-                  use_table=above > _TABLE_SHARE * (n_gen + n_imp))
-    for r0, s in blocks:
-        p2.visit(blocks, r0, s)
-    cvals, ckeys, cgrp = p2.finish()
+    ref = _Refiner(code, kwin, cell_of, k_ident, 0 if bkeys is None else bkeys.size, gcell_of,
+                   0 if gvalues is None else gvalues.size, n_gcells)
+    if one_pass:
+        kk, kv, kr, kc = top.result()
+        ref.process(blocks, kk, kv, kr, kc)
+    else:
+        # one comparison per score finds the candidates when few scores lie at or above the
+        # lowest chosen bin; otherwise looking every score's bin up in a table is cheaper
+        above = int(hist_all[ref.kmin :].sum()) if ref.smin is not None else 0
+        use_table = above > _TABLE_SHARE * (n_gen + n_imp)
+        del top
+        for r0, s in blocks:
+            ref.visit(blocks, r0, s, chunk, use_table)
+    cvals, ckeys, cgrp = ref.finish()
     cvals = cvals.astype(np.float64) / _SCORE_SCALE
 
     listed = np.bincount(ckeys.astype(np.int64), minlength=_NBINS)
     if not np.array_equal(listed[collect_bins], imp_hist[collect_bins]):
-        raise RuntimeError("internal error: the second pass did not reproduce the first pass's scores")
+        raise RuntimeError("internal error: the listed scores do not match the first pass's counts")
 
     counts = _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, nonempty)
     unrefined = both[~np.isin(both, collect_bins)]
@@ -1267,7 +1382,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
 
     if bkeys is not None:
         w = bkeys.size
-        imp_ge_c = _ge_from_cells(p2.win_a.reshape(k_ident, w))
+        imp_ge_c = _ge_from_cells(ref.win.reshape(k_ident, w))
         gcell = np.searchsorted(bkeys, gkey, side="right") - 1
         gen_lt_c = _lt_from_cells(gid, gcell, k_ident, w)
         imp_c = sizes * (n - sizes)
@@ -1277,10 +1392,12 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
 
     group_rep = None
     if gvalues is not None:
-        group_rep = _groups_all_pairs(gvalues, gcodes, codes, targets, counts, n_imp, op_bin, ob, p2,
+        group_rep = _groups_all_pairs(gvalues, gcodes, codes, targets, counts, n_imp, op_bin, ob, ref,
                                       cvals, ckeys, cgrp, gval, ggrp, resolvable)
     info = _bootstrap_info(bootstrap, confidence, seed, k_ident)
-    return _assemble(counts, targets, curve_points, ci, info, auc_value, bound, group_rep)
+    report = _assemble(counts, targets, curve_points, ci, info, auc_value, bound, group_rep)
+    report["passes"] = 1 if one_pass else 2
+    return report
 
 
 def _groups_all_pairs(gvalues, gcodes, codes, targets, counts, n_imp, op_bin, ob, p2, cvals, ckeys, cgrp,
@@ -1311,21 +1428,27 @@ def _groups_all_pairs(gvalues, gcodes, codes, targets, counts, n_imp, op_bin, ob
 
 
 def _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, nonempty):
-    """ScoreCounts with exact values wherever they are known and one tied entry per other bin."""
+    """ScoreCounts with exact values wherever they are known and one tied entry per other bin.
+
+    Bins are intervals of the score and a tied entry sits inside its bin (its middle), so ordering
+    by value orders by bin too. The tied entries come sorted; only the exact values are sorted and
+    then merged in.
+    """
     exact_bin = np.zeros(_NBINS, bool)
     exact_bin[collect_bins] = True
     exact_bin[imp_hist == 0] = True  # genuine-only bins: the genuine scores are all known
-    g_exact = exact_bin[gkey]
     tied = nonempty[~exact_bin[nonempty]]
-    keys = np.concatenate([gkey[g_exact], ckeys.astype(np.int64), tied])
-    vals = np.concatenate([gval[g_exact], cvals, _bin_value(tied)])
-    gcount = np.concatenate([np.ones(int(g_exact.sum()), np.int64), np.zeros(cvals.size, np.int64),
-                             gen_hist[tied]])
-    icount = np.concatenate([np.zeros(int(g_exact.sum()), np.int64), np.ones(cvals.size, np.int64),
-                             imp_hist[tied]])
-    order = np.lexsort((vals, keys))
-    keys, vals, gcount, icount = keys[order], vals[order], gcount[order], icount[order]
-    new = np.ones(keys.size, bool)
-    new[1:] = (keys[1:] != keys[:-1]) | (vals[1:] != vals[:-1])
-    starts = np.flatnonzero(new)
-    return ScoreCounts(vals[starts], np.add.reduceat(gcount, starts), np.add.reduceat(icount, starts))
+    ex_v = np.concatenate([gval[exact_bin[gkey]], cvals])
+    ex_g = np.zeros(ex_v.size, np.int64)
+    ex_g[: ex_v.size - cvals.size] = 1
+    order = np.argsort(ex_v, kind="stable")
+    ex_v, ex_g = ex_v[order], ex_g[order]
+    first = np.r_[True, ex_v[1:] != ex_v[:-1]] if ex_v.size else np.empty(0, bool)
+    starts = np.flatnonzero(first)
+    ex_gc = np.add.reduceat(ex_g, starts) if starts.size else np.empty(0, np.int64)
+    ex_ic = np.diff(np.r_[starts, ex_v.size]) - ex_gc
+    ex_v = ex_v[starts]
+    t_v = _bin_value(tied)
+    at = np.searchsorted(t_v, ex_v)  # no exact value equals a tied one: their bins differ
+    return ScoreCounts(np.insert(t_v, at, ex_v), np.insert(gen_hist[tied], at, ex_gc),
+                       np.insert(imp_hist[tied], at, ex_ic))
