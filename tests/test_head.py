@@ -76,6 +76,18 @@ def test_gradient_matches_central_differences(rng, hidden, distance):
         assert np.abs(num).max() > 1e-4  # the check is not vacuous
 
 
+@pytest.mark.parametrize("rows, k, n", [(5, 4, 3), (700, 64, 16), (3000, 128, 16), (700, 64, 128)])
+def test_blocked_products_equal_one_shot(rng, rows, k, n):
+    # The head cuts its products into row blocks (to stay single-threaded); the blocked results
+    # must equal the one-shot products, for one block and for many.
+    from tripletkit.head import _matmul, _matmul_tn, _rows_per_block
+
+    A, B, G = rng.normal(size=(rows, k)), rng.normal(size=(k, n)), rng.normal(size=(rows, n))
+    np.testing.assert_allclose(_matmul(A, B), A @ B, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(_matmul_tn(A, G), A.T @ G, rtol=1e-12, atol=1e-10)
+    assert (rows > _rows_per_block(k, n)) == (rows >= 700)  # both paths are exercised
+
+
 def test_raw_outputs_by_hand(rng):
     # Linear head: z = ((x/||x||) - shift) / scale @ W; hidden: relu(s W1 + b1) W2 + b2.
     X = rng.normal(size=(7, 4))

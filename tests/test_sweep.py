@@ -11,7 +11,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError
 from tripletkit.metrics.verification import count_scores, equal_error_rate, fnmr_at_fmr, verify_all_pairs
-from tripletkit.sweep import _PairScores, paired_comparison, parse_primary, sweep
+from tripletkit.sweep import _metric, _PairScores, paired_comparison, parse_primary, sweep
 from tripletkit.table import write_table
 
 
@@ -167,6 +167,34 @@ def test_full_sample_values_agree_with_verification_module(rng):
     assert equal_error_rate(counts)[0] == pytest.approx(ref["eer"], abs=1e-9)
     assert fnmr_at_fmr(counts, 0.01)[0] == pytest.approx(ref["fnmr_at_fmr"]["0.01"]["fnmr"], abs=1e-9)
     assert int(counts.genuine.sum()) == ref["genuine_pairs"] and int(counts.impostor.sum()) == ref["impostor_pairs"]
+
+
+@pytest.mark.parametrize("primary", ["eer", "fnmr@0.01"])
+def test_tail_shortcut_equals_full_pair_list(rng, primary):
+    # Replicates use only the top tail of the impostor scores plus a closed-form total; with the
+    # operating point above the cut this must give the same float as the full pair list, and
+    # below it (forced here with a cut at the operating point itself) the full list is used.
+    labels, X, _ = _clusters(rng, 30, 6, 8, 0.45)  # EER about 5 %: the tail is a real cut
+    E = _unit(X).astype(np.float32)
+    p = parse_primary(primary)
+    ps = _PairScores(E, labels)
+    value = _metric(ps, None, p)
+    op = value if p.kind == "eer" else p.fmr
+    for factor in (8.0, 1.0):
+        ps.prepare_tail(factor * op)
+        assert ps._tail is not None and ps._tail["imp_group"].size < ps.impostor_pairs
+        stats = {"full_list": 0}
+        for _ in range(60):
+            m = np.bincount(rng.integers(0, 30, 30), minlength=30).astype(np.float64)
+            fast = _metric(ps, m, p, stats)
+            tail, ps._tail = ps._tail, None
+            slow = _metric(ps, m, p)
+            ps._tail = tail
+            assert fast == slow
+        if factor == 8.0:
+            assert stats["full_list"] <= 3
+        else:
+            assert stats["full_list"] > 0
 
 
 # -- the paired comparison ---------------------------------------------------------------------
@@ -377,6 +405,15 @@ def test_config_errors_one_line_no_output(tmp_path, feature_tables, text, match)
         sweep(cfg, out, quiet=True)
     assert "\n" not in str(info.value)
     assert not out.exists() and not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_held_out_set_too_large_for_the_paired_comparison(tmp_path, feature_tables, monkeypatch):
+    import tripletkit.sweep as sw
+
+    monkeypatch.setattr(sw, "MAX_PAIRS", 1000)  # the held-out table has 80 rows, 3160 pairs
+    with pytest.raises(TripletkitError, match=r"80 held-out rows make 3160 pairs; .* at most 1000"):
+        sweep(_write_config(tmp_path, FIT_HEAD), tmp_path / "out", quiet=True)
+    assert not (tmp_path / "out").exists()
 
 
 def test_missing_config_file(tmp_path):

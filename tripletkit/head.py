@@ -58,6 +58,42 @@ _ADAM_BETA1, _ADAM_BETA2, _ADAM_EPS = 0.9, 0.999, 1e-8
 _MIN_SCALE = 1e-8
 
 
+#: Multiply-adds per matrix product call. OpenBLAS runs a product single-threaded below about
+#: 2**18 multiply-adds (its GEMM threading threshold) and with every core above it. The head's
+#: products are small (a minibatch of a few hundred rows times d_in x dim), and for those the
+#: threads' start-up and synchronisation dominate: about 10x slower than one thread on an idle
+#: 2-core machine and up to 100x on a loaded one (measured, see docs/benchmarks_head.md). So
+#: products are cut into row blocks under the threshold; the blocks depend only on the shapes,
+#: so results stay deterministic.
+_BLOCK_MACS = 1 << 18
+
+
+def _rows_per_block(k, n):
+    return max(1, _BLOCK_MACS // max(1, k * n))
+
+
+def _matmul(A, B):
+    """``A @ B`` computed in row blocks of ``A`` (see :data:`_BLOCK_MACS`)."""
+    r = _rows_per_block(A.shape[1], B.shape[1])
+    if A.shape[0] <= r:
+        return A @ B
+    out = np.empty((A.shape[0], B.shape[1]), dtype=np.result_type(A, B))
+    for s in range(0, A.shape[0], r):
+        np.matmul(A[s:s + r], B, out=out[s:s + r])
+    return out
+
+
+def _matmul_tn(A, G):
+    """``A.T @ G`` accumulated over row blocks of ``A`` and ``G`` (see :data:`_BLOCK_MACS`)."""
+    r = _rows_per_block(A.shape[1], G.shape[1])
+    if A.shape[0] <= r:
+        return A.T @ G
+    out = np.zeros((A.shape[1], G.shape[1]), dtype=np.result_type(A, G))
+    for s in range(0, A.shape[0], r):
+        out += A[s:s + r].T @ G[s:s + r]
+    return out
+
+
 def _unit_rows(X, name):
     """Validated float64 copy of ``X`` with unit rows."""
     return as_embeddings(X, name, normalise=True, dtype=np.float64)
@@ -185,22 +221,22 @@ class ProjectionHead:
         """Raw outputs z (before normalisation) of standardised rows, and what backward needs."""
         p = self.params
         if self.hidden == 0:
-            return S @ p["weight"], (S,)
-        pre = S @ p["weight_1"] + p["bias_1"]
+            return _matmul(S, p["weight"]), (S,)
+        pre = _matmul(S, p["weight_1"]) + p["bias_1"]
         H = np.maximum(pre, 0.0)
-        return H @ p["weight_2"] + p["bias_2"], (S, pre, H)
+        return _matmul(H, p["weight_2"]) + p["bias_2"], (S, pre, H)
 
     def _backward(self, cache, dZ):
         """Gradients of the trained parameters from dL/dz (float64 (n, dim))."""
         if self.hidden == 0:
             (S,) = cache
-            return {"weight": S.T @ dZ}
+            return {"weight": _matmul_tn(S, dZ)}
         S, pre, H = cache
         p = self.params
-        dH = dZ @ p["weight_2"].T
+        dH = _matmul(dZ, p["weight_2"].T)
         dpre = np.where(pre > 0.0, dH, 0.0)  # ReLU subgradient 0 at 0
-        return {"weight_1": S.T @ dpre, "bias_1": dpre.sum(axis=0),
-                "weight_2": H.T @ dZ, "bias_2": dZ.sum(axis=0)}
+        return {"weight_1": _matmul_tn(S, dpre), "bias_1": dpre.sum(axis=0),
+                "weight_2": _matmul_tn(H, dZ), "bias_2": dZ.sum(axis=0)}
 
     def raw(self, X):
         """Raw outputs z of inputs ``X`` (float64 (n, dim), before the final normalisation)."""

@@ -22,18 +22,29 @@ replacement (multiplicities m_i) and applies that same draw to every run, so the
 runs share (which identities happen to be in the evaluation set) cancels from the difference. The
 verdict says the difference is larger than the noise when the interval excludes 0.
 
-How a replicate is scored (exact, and the same arithmetic as the full-sample value): every pair
-score of the held-out set is computed once per run and sorted; in a replicate a genuine pair of
-identity i carries weight m_i (the pairs of each drawn copy) and an impostor pair of identities i, j
-carries weight m_i * m_j (the pairs between the copies); pairs between two copies of one identity
-are left out, since they would pair a photo with itself. FMR(t) and FNMR(t) are then exact weighted
-count ratios at every distinct score, FNMR at FMR x is the lowest FNMR over thresholds with
-FMR <= x (not resolvable, None, when the weighted impostor count is below 3 / x, the rule of 3), and
-the EER is where FMR - FNMR changes sign, interpolated linearly between the two neighbouring
-thresholds (the definitions of the evaluation module). With all m_i = 1 this is the plain
-all-pairs computation. It materialises the N(N-1)/2 pair scores of each run (about 17 bytes per
-pair and run), so it is meant for held-out sets of up to about ten thousand rows; larger sets are
-refused with a message.
+How a replicate is scored (exact): every pair score of the held-out set is computed once per run
+(float32 products of unit rows, as in the verification module) and counted at each distinct value.
+In a replicate a genuine pair of identity i carries weight m_i (the pairs inside each drawn copy)
+and an impostor pair of identities i, j carries weight m_i * m_j (the pairs between the copies);
+pairs between two copies of one identity are not formed, since they would pair a photo with
+itself. The weights are whole numbers, so the weighted counts are exact integer counts, and they
+go through the verification module's own functions (:func:`~tripletkit.metrics.verification.
+equal_error_rate`, :func:`~tripletkit.metrics.verification.fnmr_at_fmr`): the replicate's EER and
+FNMR at FMR x have the definitions of the evaluation reports, FNMR at FMR x is not resolvable
+(None) when the weighted impostor count is below 3 / x (the rule of 3), and with every m_i = 1 the
+value is the report's all-pairs value. (The verification module's own intervals expand the
+impostor weights to first order; here they are exact, since the comparison must give exactly 0
+for identical runs.)
+
+To keep replicates cheap, only the top tail of the impostor scores is held per replicate: the
+pairs at or above the threshold where the full-sample FMR is 2 x EER (primary "eer") or 8 x the
+FMR target; the impostors below it enter only through their total weight, which has the closed
+form ((sum_i m_i n_i)^2 - sum_i (m_i n_i)^2) / 2 (n_i rows of identity i), lumped at one score
+below the cut. Error rates above the cut are then exact; a replicate whose operating point falls
+below the cut is recomputed from every pair (counted in ``replicates_on_full_pair_list``). The
+pair scores are materialised (about 20 bytes per pair and run, all runs at once), so a sweep is
+meant for held-out sets of up to about 6,300 rows (:data:`MAX_PAIRS`); larger sets are refused
+with a message that says to sweep on a subset of the held-out identities.
 
 References
 ----------
@@ -67,9 +78,9 @@ from .table import EmbeddingTable
 
 __all__ = ["sweep", "paired_comparison", "parse_primary"]
 
-#: Pair scores held per run by the paired comparison (about 1 GB per run at this cap).
-MAX_PAIRS = 60_000_000
-
+#: Pair scores held per run by the paired comparison (about 20 bytes each: 400 MB per run at this
+#: cap, reached at about 6,300 held-out rows).
+MAX_PAIRS = 20_000_000
 
 
 # ---------------------------------------------------------------------------------------------
@@ -133,7 +144,7 @@ class _PairScores:
     """Every pair score of one run's held-out set, grouped by distinct value, with the pair's identities.
 
     Scores are float32 products of unit rows (as in the verification module). Memory: about 12 bytes
-    per impostor pair, 8 per genuine pair and 8 per distinct score.
+    per impostor pair, 8 per genuine pair and 8 per distinct score, plus the replicate tail.
     """
 
     def __init__(self, embeddings, labels):
@@ -168,6 +179,8 @@ class _PairScores:
         self.gen_group, self.gen_identity = group[gen], la[gen]
         imp = ~gen
         self.imp_group, self.imp_a, self.imp_b = group[imp], la[imp], lb[imp]
+        self.rows_per_identity = np.bincount(labels).astype(np.float64)
+        self._tail = None
 
     @property
     def genuine_pairs(self):
@@ -196,21 +209,96 @@ class _PairScores:
             imp = np.bincount(self.imp_group, weights=m[self.imp_a] * m[self.imp_b], minlength=size)
         return ScoreCounts(self.thresholds, gen.astype(np.int64), imp.astype(np.int64))
 
+    # -- the exact shortcut for replicates ---------------------------------------------------
+    def prepare_tail(self, fmr_cut):
+        """Keep, for replicates, the impostor pairs scoring at or above the full-sample FMR ``fmr_cut``.
 
-def _metrics(ps, m, primary):
-    """(primary value, EER) of one run for identity multiplicities ``m``; None where undefined."""
+        Impostor pairs below that threshold only enter a replicate through their total weight,
+        which has a closed form: every cross-identity row pair is an impostor pair, so the total is
+        ((sum_i m_i n_i)^2 - sum_i (m_i n_i)^2) / 2 with n_i rows of identity i. They are lumped at
+        the largest score below the cut. Error rates at thresholds at or above the cut are then
+        exact, and :meth:`tail_counts` says whether a replicate's operating point lies there.
+        """
+        full = self.counts()
+        imp_ge = np.cumsum(full.impostor[::-1])[::-1]  # impostor pairs scoring >= thresholds[j]
+        need = fmr_cut * self.impostor_pairs
+        cut = int(np.flatnonzero(imp_ge >= need)[-1]) if fmr_cut < 1 and (imp_ge >= need).any() else 0
+        if cut == 0:
+            self._tail = None  # the cut keeps (nearly) everything: use the full pair list
+            return
+        keep_imp = self.imp_group >= cut
+        # Thresholds: every genuine score, every kept impostor score, and the lump's score.
+        used = np.union1d(np.union1d(self.gen_group, self.imp_group[keep_imp]), [cut - 1])
+        remap = np.full(self.thresholds.size, -1, dtype=np.int32)
+        remap[used] = np.arange(used.size, dtype=np.int32)
+        self._tail = {
+            "thresholds": self.thresholds[used],
+            "gen_group": remap[self.gen_group],
+            "imp_group": remap[self.imp_group[keep_imp]],
+            "imp_a": self.imp_a[keep_imp], "imp_b": self.imp_b[keep_imp],
+            "lump": int(remap[cut - 1]), "cut": int(remap[cut]),
+        }
+
+    def tail_counts(self, m):
+        """Weighted counts from the kept tail plus the lump; None when no tail was prepared."""
+        from .metrics.verification import ScoreCounts
+
+        t = self._tail
+        if t is None:
+            return None
+        size = t["thresholds"].size
+        gen = np.bincount(t["gen_group"], weights=m[self.gen_identity], minlength=size)
+        imp = np.bincount(t["imp_group"], weights=m[t["imp_a"]] * m[t["imp_b"]], minlength=size)
+        mn = m * self.rows_per_identity
+        total = (mn.sum() ** 2 - np.dot(mn, mn)) / 2.0
+        imp[t["lump"]] += total - imp.sum()
+        return ScoreCounts(t["thresholds"], gen.astype(np.int64), np.rint(imp).astype(np.int64))
+
+    def tail_is_exact_for(self, counts, primary):
+        """Whether ``primary`` on ``counts`` (from :meth:`tail_counts`) is decided above the cut."""
+        t = self._tail
+        n_gen, n_imp = int(counts.genuine.sum()), int(counts.impostor.sum())
+        imp_ge_cut = int(counts.impostor[t["cut"]:].sum())
+        if primary.kind == "eer":
+            # D = FMR - FNMR is non-increasing in the threshold; D >= 0 at the cut puts the last
+            # threshold with D >= 0, and the one after it, at or above the cut.
+            gen_lt_cut = int(counts.genuine[:t["cut"]].sum())
+            return imp_ge_cut * n_gen >= gen_lt_cut * n_imp
+        # FMR at the cut above the target: the lowest threshold with FMR <= target lies above the cut.
+        return imp_ge_cut / n_imp > primary.fmr
+
+
+def _metric(ps, m, primary, stats=None):
+    """The primary metric of one run for identity multiplicities ``m`` (None: the full sample).
+
+    Returns None where it is undefined: no genuine or no impostor pair, or an FMR target with
+    fewer than 3 / FMR impostor pairs (the rule of 3, as in the verification module).
+    """
     from .metrics.verification import equal_error_rate, fnmr_at_fmr
 
-    counts = ps.counts(m)
+    counts = None
+    if m is not None:
+        counts = ps.tail_counts(m)
+        if counts is not None and int(counts.genuine.sum()) and int(counts.impostor.sum()):
+            if not ps.tail_is_exact_for(counts, primary):
+                counts = None
+                if stats is not None:
+                    stats["full_list"] += 1
+    if counts is None:
+        counts = ps.counts(m)
     n_gen, n_imp = int(counts.genuine.sum()), int(counts.impostor.sum())
     if n_gen == 0 or n_imp == 0:
-        return None, None
-    eer = equal_error_rate(counts)[0]
+        return None
     if primary.kind == "eer":
-        return eer, eer
-    if n_imp < 3.0 / primary.fmr:  # rule of 3, as in the verification module
-        return None, eer
-    return fnmr_at_fmr(counts, primary.fmr)[0], eer
+        return equal_error_rate(counts)[0]
+    if n_imp < 3.0 / primary.fmr:
+        return None
+    return fnmr_at_fmr(counts, primary.fmr)[0]
+
+
+#: Replicates keep the impostor tail down to this multiple of the full-sample operating FMR (the
+#: EER, or the FMR target); a replicate whose operating point falls below it uses every pair.
+_TAIL_FACTOR = {"eer": 2.0, "fnmr": 8.0}
 
 
 def _interval(values, confidence):
@@ -222,42 +310,44 @@ def _interval(values, confidence):
 
 
 def _compare(pair_scores, margins, n_identities, primary, bootstrap, confidence, seed):
-    """Full-sample metrics, per-run intervals and the paired comparison of the best two runs."""
-    full = [_metrics(ps, None, primary) for ps in pair_scores]
+    """Full-sample values, per-run intervals and the paired comparison of the best two runs."""
+    full = [_metric(ps, None, primary) for ps in pair_scores]
+    for ps, value in zip(pair_scores, full):
+        if value is not None:
+            # The operating FMR: the EER itself, or the FMR target.
+            op = value if primary.kind == "eer" else primary.fmr
+            ps.prepare_tail(min(1.0, _TAIL_FACTOR[primary.kind] * max(op, 1e-12)))
     rng = np.random.default_rng(seed)
-    boot = np.full((len(pair_scores), bootstrap, 2), np.nan)
+    boot = np.full((len(pair_scores), bootstrap), np.nan)
+    stats = {"full_list": 0}
     for b in range(bootstrap):
         m = np.bincount(rng.integers(0, n_identities, size=n_identities), minlength=n_identities).astype(np.float64)
         for r, ps in enumerate(pair_scores):
-            value, eer = _metrics(ps, m, primary)
-            boot[r, b] = (np.nan if value is None else value, np.nan if eer is None else eer)
-    per_run = []
-    for r in range(len(pair_scores)):
-        per_run.append({
-            "value": full[r][0], "eer": full[r][1],
-            "ci": _interval([x for x in boot[r, :, 0] if np.isfinite(x)], confidence),
-            "eer_ci": _interval([x for x in boot[r, :, 1] if np.isfinite(x)], confidence),
-        })
-    ranked = sorted((i for i in range(len(margins)) if full[i][0] is not None), key=lambda i: (full[i][0], margins[i]))
+            if full[r] is not None:
+                value = _metric(ps, m, primary, stats)
+                boot[r, b] = np.nan if value is None else value
+    per_run = [{"value": full[r], "ci": _interval(boot[r][np.isfinite(boot[r])].tolist(), confidence)}
+               for r in range(len(pair_scores))]
+    ranked = sorted((i for i in range(len(margins)) if full[i] is not None), key=lambda i: (full[i], margins[i]))
     comparison = {
         "primary": primary.text, "lower_is_better": True, "bootstrap": bootstrap, "confidence": confidence,
         "seed": seed, "resampled": "held-out identities, the same draw for both runs",
         "best": None, "runner_up": None, "difference": None, "ci": None, "replicates_used": 0,
-        "larger_than_noise": None,
+        "larger_than_noise": None, "replicates_on_full_pair_list": stats["full_list"],
     }
     if not ranked:
         comparison["verdict"] = f"no comparison: {primary.text} is not defined for any run (see each run's report)"
         return per_run, comparison
     best = ranked[0]
-    comparison["best"] = {"margin": margins[best], "value": full[best][0], "ci": per_run[best]["ci"]}
+    comparison["best"] = {"margin": margins[best], "value": full[best], "ci": per_run[best]["ci"]}
     if len(ranked) < 2:
         comparison["verdict"] = (f"no comparison: only margin {margins[best]:g} has a defined {primary.text}"
                                  if len(margins) > 1 else "no comparison: the sweep has a single run")
         return per_run, comparison
     second = ranked[1]
-    comparison["runner_up"] = {"margin": margins[second], "value": full[second][0], "ci": per_run[second]["ci"]}
-    diff = full[second][0] - full[best][0]
-    d = boot[second, :, 0] - boot[best, :, 0]
+    comparison["runner_up"] = {"margin": margins[second], "value": full[second], "ci": per_run[second]["ci"]}
+    diff = full[second] - full[best]
+    d = boot[second] - boot[best]
     d = d[np.isfinite(d)]
     ci = _interval(d.tolist(), confidence)
     comparison.update(difference=float(diff), ci=ci, replicates_used=int(d.size))
@@ -300,7 +390,7 @@ def paired_comparison(runs, labels, primary="eer", *, bootstrap=200, confidence=
     Returns
     -------
     dict
-        ``runs``: per margin ``value`` (the primary metric), ``eer`` and their percentile intervals;
+        ``runs``: per margin ``value`` (the primary metric) and ``ci``, its percentile interval;
         ``comparison``: ``best``, ``runner_up``, ``difference`` (runner-up minus best), ``ci``,
         ``larger_than_noise`` and a plain ``verdict``. See the module docstring for the method.
     """
@@ -378,6 +468,7 @@ def _plan(cfg, where):
                 f"{where}: [data] train has feature dimension {train.dim} but heldout has {heldout.dim}; "
                 "both must come from the same backbone"
             )
+        _check_size(heldout, f"{where} [data] heldout")
         runs = [_RunPlan(margin=m) for m in sorted(sw.margins)]
         return _Plan("fit-head", primary, runs, train=train, heldout=heldout)
     # checkpoints
@@ -403,9 +494,20 @@ def _plan(cfg, where):
         train = _read(r.train, f"{where} [sweep] runs[{i}].train") if r.train is not None else None
         runs.append(_RunPlan(margin=r.margin, heldout=held, train=train, heldout_path=r.heldout, train_path=r.train))
     ref = runs[0]
+    _check_size(ref.heldout, f"{where} [sweep] runs (margin {ref.margin:g}) heldout")
     for run in runs[1:]:
         run.heldout = _align(ref, run, where)
     return _Plan("checkpoints", primary, runs)
+
+
+def _check_size(table, where):
+    pairs = table.n * (table.n - 1) // 2
+    if pairs > MAX_PAIRS:
+        raise TripletkitError(
+            f"{where}: {table.n} held-out rows make {pairs} pairs; the paired comparison of a sweep holds "
+            f"every pair score and allows at most {MAX_PAIRS} (about 6,300 rows); sweep on a subset of the "
+            "held-out identities"
+        )
 
 
 def _align(ref, run, where):
@@ -586,7 +688,6 @@ def sweep(config_path, out, *, force=False, quiet=False):
                                        cfg.sweep.confidence, cfg.sweep.seed)
         for row, pr in zip(rows, per_run):
             row["primary"] = {"metric": plan.primary.text, "value": pr["value"], "ci": pr["ci"]}
-            row["eer_ci"] = pr["eer_ci"]
         plots = _plots(tmp, plan, rows, reports, comparison)
         result = jsonable({
             "mode": plan.mode,
@@ -652,7 +753,8 @@ def _markdown(result, plan, cfg):
             "",
         ]
     ranked_by_eer = plan.primary.kind == "eer"
-    head = ["margin", *([] if ranked_by_eer else [plan.primary.label + f" ({level} CI)"]), f"EER ({level} CI)",
+    head = ["margin", *([] if ranked_by_eer else [plan.primary.label + f" ({level} CI)"]),
+            f"EER ({level} CI)" if ranked_by_eer else "EER",
             *[f"FNMR@{k}" for k in fmr_keys], "AUC", "Recall@1", "MAP@R", "purity", "NMI", "active",
             "hard / semi-hard / easy"]
     lines += ["## Runs", "", "| " + " | ".join(head) + " |", "|" + "---:|" * len(head)]
@@ -662,7 +764,7 @@ def _markdown(result, plan, cfg):
         cells = [f"[{r['margin']:g}]({r['report']})"]
         if not ranked_by_eer:
             cells.append(_pct(prim["value"]) + _pct_ci(prim["ci"]))
-        cells.append(_pct(m["eer"]) + _pct_ci(r["eer_ci"]))
+        cells.append(_pct(m["eer"]) + (_pct_ci(prim["ci"]) if ranked_by_eer else ""))
         for k in fmr_keys:
             e = m["fnmr_at_fmr"].get(k) or {}
             cells.append(_pct(e.get("fnmr")) + _pct_ci(e.get("ci")))
@@ -675,8 +777,8 @@ def _markdown(result, plan, cfg):
         lines.append("| " + " | ".join(cells) + " |")
     lines += [
         "",
-        "Intervals in the FNMR@ columns come from each run's own evaluation report; the intervals of the EER "
-        "and of the ranking metric come from the sweep's shared identity resamples. 'active' and the regime "
+        "Intervals in the FNMR@ columns come from each run's own evaluation report; the interval of the "
+        "ranking metric comes from the sweep's shared identity resamples. 'active' and the regime "
         "counts are the miner's statistics: "
         + ("triplets on the fitted head's training outputs at each margin." if plan.mode == "fit-head"
            else "triplets on each run's training dump (n/a where none was given)."),
@@ -687,6 +789,14 @@ def _markdown(result, plan, cfg):
     for p in result["plots"]:
         lines.append(f"![{p['title']}]({p['file']})")
         lines.append("")
+    if plan.mode == "fit-head":
+        lines += [
+            "Loss curves: the mean hinge loss of the triplets mined at the start of each epoch (solid) and of "
+            "the same triplets after the epoch's updates (dashed). Each epoch mines only the regimes asked for "
+            f"({', '.join(cfg.mining.regimes)}) on the current head, so the loss measures how hard the remaining "
+            "violations are rather than how many there are; the number of mined triplets (right) is the count.",
+            "",
+        ]
     if result["notes"]:
         lines += ["## Notes", ""] + [f"- {n}" for n in result["notes"]] + [""]
     lines += ["## Caution", "", CAUTION, ""]
@@ -719,31 +829,48 @@ def _margin_axis(ax, margins):
     ax.set_xlabel("margin alpha (squared distance on the unit sphere)")
 
 
+def _bars(ax, margins, values, cis, colour, label, style="o-"):
+    """Values (fractions, drawn in %) against margin with asymmetric interval bars where known."""
+    pts = [(m, v, c) for m, v, c in zip(margins, values, cis) if v is not None]
+    if not pts:
+        return
+    x = [p[0] for p in pts]
+    y = np.array([100 * p[1] for p in pts])
+    lo = np.array([100 * max(p[1] - p[2][0], 0.0) if p[2] else 0.0 for p in pts])
+    hi = np.array([100 * max(p[2][1] - p[1], 0.0) if p[2] else 0.0 for p in pts])
+    ax.errorbar(x, y, yerr=[lo, hi], fmt=style, color=colour, ecolor=colour, elinewidth=0.8, capsize=4,
+                linewidth=1.2, markersize=5, label=label)
+
+
 def _plots(tmp, plan, rows, reports, comparison):
     plots = []
     margins = [r["margin"] for r in rows]
     best = (comparison.get("best") or {}).get("margin")
-    # 1. metric vs margin, with interval bars
-    panels = [("primary", plan.primary.label)] + ([] if plan.primary.kind == "eer" else [("eer", "EER")])
-    fig, axes = _figure(width=5.2 * len(panels), ncols=len(panels))
-    for ax, (key, label) in zip(axes, panels):
-        vals = [r["primary"]["value"] if key == "primary" else r["metrics"]["eer"] for r in rows]
-        cis = [r["primary"]["ci"] if key == "primary" else r["eer_ci"] for r in rows]
-        xs = [m for m, v in zip(margins, vals) if v is not None]
-        ys = np.array([100 * v for v in vals if v is not None])
-        lo = np.array([100 * (v - c[0]) if c else 0.0 for v, c in zip(vals, cis) if v is not None])
-        hi = np.array([100 * (c[1] - v) if c else 0.0 for v, c in zip(vals, cis) if v is not None])
-        if xs:
-            ax.errorbar(xs, ys, yerr=[np.maximum(lo, 0), np.maximum(hi, 0)], fmt="o-", color="#1f4e79",
-                        ecolor="#7f9fbf", capsize=4, linewidth=1.2, markersize=5)
-            if best is not None and best in xs:
-                j = xs.index(best)
-                ax.plot([best], [ys[j]], marker="*", markersize=15, color="#c0392b", linestyle="none",
-                        label=f"best: margin {best:g}")
-                ax.legend(frameon=False, fontsize=8)
+    # 1. metric vs margin, with interval bars: the ranking metric (sweep resamples) and the
+    # reports' FNMR at each FMR target (their own intervals)
+    fig, (ax_p, ax_f) = _figure(width=10.4, ncols=2)
+    vals = [r["primary"]["value"] for r in rows]
+    cis = [r["primary"]["ci"] for r in rows]
+    _bars(ax_p, margins, vals, cis, "#1f4e79", None)
+    if best is not None:
+        ax_p.plot([best], [100 * comparison["best"]["value"]], marker="*", markersize=15, color="#b03a2e",
+                  linestyle="none", label=f"best: margin {best:g}")
+        ax_p.legend(frameon=False, fontsize=8)
+    ax_p.set_ylabel(f"{plan.primary.label} (%)")
+    ax_p.set_title(f"ranking metric ({comparison['confidence']:.0%} identity-resample intervals)", fontsize=9)
+    keys = sorted({k for r in rows for k in r["metrics"]["fnmr_at_fmr"]}, key=float)
+    colours = ["#1f4e79", "#b03a2e", "#1e8449", "#6c3483", "#ca6f1e", "#34495e", "#138d75", "#7f8c8d"]
+    for j, key in enumerate(keys):
+        entries = [r["metrics"]["fnmr_at_fmr"].get(key) or {} for r in rows]
+        _bars(ax_f, margins, [e.get("fnmr") for e in entries], [e.get("ci") for e in entries],
+              colours[j % len(colours)], f"FNMR at FMR {float(key):g}")
+    _bars(ax_f, margins, [r["metrics"]["eer"] for r in rows], [None] * len(rows), "0.45", "EER", style="s--")
+    ax_f.set_ylim(bottom=0)
+    ax_f.set_ylabel("error rate (%)")
+    ax_f.set_title("each run's report (FNMR with its report's intervals)", fontsize=9)
+    ax_f.legend(frameon=False, fontsize=8)
+    for ax in (ax_p, ax_f):
         _margin_axis(ax, margins)
-        ax.set_ylabel(f"{label} (%)")
-        ax.set_title(f"{label} vs margin ({comparison['confidence']:.0%} identity-bootstrap intervals)", fontsize=9)
     fig.tight_layout()
     fig.savefig(tmp / "metric_vs_margin.png")
     plots.append({"file": "metric_vs_margin.png", "title": "metric vs margin"})
@@ -753,7 +880,6 @@ def _plots(tmp, plan, rows, reports, comparison):
     plot_roc_det([(f"margin {r['margin']:g}", rep) for r, rep in zip(rows, reports)], tmp / "roc_det.png",
                  title=f"ROC and DET of every run (markers: FMR targets and EER; ranked by {plan.primary.label})")
     plots.append({"file": "roc_det.png", "title": "ROC and DET of all runs"})
-    colours = ["#1f4e79", "#b03a2e", "#1e8449", "#6c3483", "#ca6f1e", "#34495e", "#138d75", "#7f8c8d"]
     # 3. loss curves (fit-head mode)
     if plan.mode == "fit-head":
         from matplotlib.ticker import MaxNLocator
