@@ -118,11 +118,15 @@ def test_all_reject_threshold_when_target_needs_it():
 
 def test_blocked_equals_one_shot_for_several_block_sizes(table):
     x, labels = table
-    ref = V.verify_all_pairs(x, labels, block_rows=len(x), bootstrap=30, fmr_targets=[0.001, 0.01, 0.1])
+    kw = dict(bootstrap=30, fmr_targets=[0.001, 0.01, 0.1])
+    ref = V.verify_all_pairs(x, labels, block_rows=len(x), **kw)
+    ref.pop("passes")  # how the bins were listed may depend on the blocks; the results may not
     for rows in (1, 7, 64, 239):
-        out = V.verify_all_pairs(x, labels, block_rows=rows, bootstrap=30, fmr_targets=[0.001, 0.01, 0.1])
+        out = V.verify_all_pairs(x, labels, block_rows=rows, **kw)
+        out.pop("passes")
         assert out == ref
-    out = V.verify_all_pairs(x, labels, memory_budget=1 << 20, bootstrap=30, fmr_targets=[0.001, 0.01, 0.1])
+    out = V.verify_all_pairs(x, labels, memory_budget=1 << 20, **kw)
+    out.pop("passes")
     assert out == ref
 
 
@@ -182,10 +186,6 @@ def test_one_pass_and_two_passes_agree(rng, monkeypatch):
         two = V.verify_all_pairs(x, labels, **kw)
         monkeypatch.undo()
         assert one.pop("passes") == 1 and two.pop("passes") == 2
-        if auc_mode == "auto":  # a second pass lists every AUC bin; one pass only the kept ones
-            assert two["auc_exact"] and abs(one["auc"] - two["auc"]) <= one["auc_error_bound"]
-            for key in ("auc", "auc_exact", "auc_error_bound", "roc", "det", "score_histogram"):
-                one.pop(key), two.pop(key)
         assert one == two
 
 
@@ -194,7 +194,7 @@ def test_kept_impostors_are_exactly_those_above_the_floor(rng):
     # floor up, and at least the number asked for
     x, labels = random_table(rng, 300, 30)
     blocks = V._Blocks(x, labels, None, 17, 1 << 20)
-    top = V._TopImpostors(500, 1 << 16)
+    top = V._TopImpostors(500, 300 * 299 // 2, 1 << 16)
     V._pass_one(blocks, top)
     every = np.concatenate([v for r0, s in blocks
                             for v, _, _ in blocks.impostors_at_or_above(r0, s, -np.inf, 1 << 16)])
@@ -411,13 +411,15 @@ def test_intervals_cover_the_true_fnmr_at_about_the_nominal_rate():
     nd = NormalDist()
     truth = nd.cdf((sd_i * nd.inv_cdf(1 - x) - mu_g) / sd_g)
     rng = np.random.default_rng(20261201)
-    covered = 0
+    covered = at_grid_end = 0
     for r in range(sims):
         g, i, gi, ii = _simulated_scores(rng, k, m, mu_g)
         op = V.verify_scores(g, i, genuine_identity=gi, impostor_identity=ii, fmr_targets=[x],
                                    bootstrap=200, seed=r)["fnmr_at_fmr"]["0.01"]
         lo, hi = op["ci"]
         covered += lo <= truth <= hi
+        at_grid_end += op["reason"] is not None  # some replicate's threshold hit the grid's end
+    assert at_grid_end <= sims // 20
     # percentile intervals over ~100 clusters cover a little under nominal (0.90-0.94 seen in
     # development); 0.85-0.99 is several binomial standard errors (0.02) either side
     assert 0.85 <= covered / sims <= 0.99

@@ -56,6 +56,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from typing import NamedTuple
 
 import faiss
@@ -351,17 +352,29 @@ def _check_groups(groups, n):
 # ---------------------------------------------------------------------------------------------
 
 
-def _boundaries(imp_ge, n_imp, targets, per_decade, max_levels=None):
+def _window_factor(identities):
+    """How far (a factor on FMR) the bootstrap grid reaches either side of each target.
+
+    A replicate's FMR at the full-sample threshold moves by a relative amount that shrinks like
+    ``1 / sqrt(k)`` for k identities (first-order expansion of the resampled count), with a
+    constant set by how unevenly the high-scoring impostors spread over identities. We use
+    ``exp(20 / sqrt(k))`` kept between 1.25 and 8: in the simulation of the tests (100
+    identities) a factor of 4 still left about 0.5% of replicates at an end of the grid and 8
+    none. Replicates whose threshold falls at an end of the grid are counted and reported.
+    """
+    return float(min(8.0, max(1.25, math.exp(20.0 / math.sqrt(max(identities, 1))))))
+
+
+def _boundaries(imp_ge, n_imp, targets, per_decade, factor, max_levels=None):
     """Indices into ascending candidate thresholds used as the bootstrap's threshold grid.
 
     ``imp_ge[j]`` is the number of impostors at or above candidate ``j`` (non-increasing). The grid
-    holds, for FMR levels spaced evenly in log from ``min(targets) / 4`` to ``4 * max(targets)``
-    (``per_decade`` per decade, at most ``max_levels``) and the targets themselves, the first
-    candidate whose FMR is at most the level. A replicate's FMR at the full-sample threshold
-    rarely moves by a factor of 4, so the grid holds its threshold.
+    holds, for FMR levels spaced evenly in log from ``min(targets) / factor`` to
+    ``factor * max(targets)`` (``per_decade`` per decade, at most ``max_levels``) and the
+    targets themselves, the first candidate whose FMR is at most the level.
     """
-    lo = max(min(targets) / 4.0, 0.5 / n_imp)
-    hi = max(lo, min(1.0, 4.0 * max(targets)))
+    lo = max(min(targets) / factor, 0.5 / n_imp)
+    hi = max(lo, min(1.0, factor * max(targets)))
     levels = int(math.ceil(per_decade * math.log10(hi / lo))) + 1
     if max_levels is not None:
         levels = max(2, min(levels, max_levels))
@@ -625,7 +638,7 @@ def _materialised(gen, imp, gen_id, imp_a, imp_b, n_ident, gen_grp, imp_grp, gro
         cand = imp_sorted[first]
         cand_ge = n_imp - np.flatnonzero(first)  # impostors at or above each distinct value
         b_idx = _boundaries(cand_ge, n_imp, [x for x in targets if _resolvable(x, n_imp)[0]] or targets,
-                            per_decade)
+                            per_decade, _window_factor(n_ident))
         bvals = cand[b_idx]
         w = bvals.size
         icell = np.searchsorted(bvals, imp, side="right") - 1
@@ -882,8 +895,9 @@ class _Blocks:
         self.gcodes = None if gcodes is None else gcodes[order]
         self.xs = np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32)
         n = self.n = x.shape[0]
-        # float32 product + int32 key (+ one byte of selection) per score of a block
-        block_rows_budget = max(1, int(memory_budget // (9 * max(n, 1))))
+        # two float32 products (one being computed while the other is counted) + int32 key
+        # (+ one byte of selection) per score of a block
+        block_rows_budget = max(1, int(memory_budget // (13 * max(n, 1))))
         if block_rows is None:
             # the leading square of each block is computed in full but only its upper half is
             # used: keep blocks to a sixteenth of the rows (at least 256) so that little is wasted
@@ -891,20 +905,39 @@ class _Blocks:
         self.b = int(max(1, min(n, block_rows, (2**31 - 1) // max(n, 1))))
         self.sizes = np.bincount(self.codes)
         self.starts = np.concatenate([[0], np.cumsum(self.sizes)[:-1]])
-        self._s = np.empty(self.b * n, np.float32)
+        self._s = [np.empty(self.b * n, np.float32), np.empty(self.b * n, np.float32)]
         self.kbuf = np.empty(self.b * n, np.int32)
 
+    def _product(self, r0, buf):
+        n = self.n
+        r1 = min(n, r0 + self.b)
+        rows, m = r1 - r0, n - r0
+        s = buf[: rows * m].reshape(rows, m)
+        np.matmul(self.xs[r0:r1], self.xs[r0:].T, out=s)
+        for a in range(rows):  # j <= i: not a pair of the upper triangle
+            s[a, : a + 1] = _SENTINEL
+        return s
+
     def __iter__(self):
-        """Yield (r0, scaled scores (rows, n - r0)). Identical calls, so identical floats, every pass."""
-        n, b = self.n, self.b
-        for r0 in range(0, n, b):
-            r1 = min(n, r0 + b)
-            rows, m = r1 - r0, n - r0
-            s = self._s[: rows * m].reshape(rows, m)
-            np.matmul(self.xs[r0:r1], self.xs[r0:].T, out=s)
-            for a in range(rows):  # j <= i: not a pair of the upper triangle
-                s[a, : a + 1] = _SENTINEL
-            yield r0, s
+        """Yield (r0, scaled scores (rows, n - r0)). Identical calls, so identical floats, every pass.
+
+        The next block's product is computed in a second thread while the caller counts the
+        current one: BLAS threads then work instead of spinning between calls.
+        """
+        starts = list(range(0, self.n, self.b))
+        if len(starts) == 1:
+            yield 0, self._product(0, self._s[0])
+            return
+        pool = ThreadPoolExecutor(max_workers=1)
+        try:
+            nxt = pool.submit(self._product, starts[0], self._s[0])
+            for t, r0 in enumerate(starts):
+                s = nxt.result()
+                if t + 1 < len(starts):
+                    nxt = pool.submit(self._product, starts[t + 1], self._s[(t + 1) % 2])
+                yield r0, s
+        finally:
+            pool.shutdown(wait=True)
 
     def genuine(self, r0, s):
         """Genuine scaled scores in this block, with identity and pair group (-1 = across groups)."""
@@ -948,17 +981,18 @@ class _Blocks:
 class _TopImpostors:
     """Keep, during the first pass, every impostor score in the bins at or above a rising floor.
 
-    The floor is a bin. It starts at the highest bin edge with at least ``keep`` impostor scores
-    of the first block at or above it, and whenever more than ``2 * keep`` scores are kept it
-    moves up to the bin of the ``keep``-th highest kept score, dropping the kept scores below.
-    Either way at least ``keep`` impostor scores seen so far lie at or above it, so it never
-    passes the bin of the ``keep``-th highest impostor score of the whole table; and the kept set
-    is at every moment exactly the impostor scores seen in bins from the floor up, so at the end
-    every bin from the floor up is complete.
+    The floor is a bin, and it only rises: when it does, the kept scores below it are dropped.
+    So the kept set is at every moment exactly the impostor scores seen in bins from the floor
+    up, and at the end every bin from the floor up is complete, wherever the floor went. It
+    starts where the first block's impostor scores put twice the wanted share (``keep`` of
+    ``n_imp``) above it, and when more than ``3 * keep`` scores are kept it moves up to the bin
+    of the ``keep``-th highest kept one. A start too high only means that the kept scores may not
+    reach the bins the operating points need; then a second pass lists them.
     """
 
-    def __init__(self, keep, chunk):
+    def __init__(self, keep, n_imp, chunk):
         self.keep = int(keep)
+        self.share = min(1.0, 2.0 * keep / max(n_imp, 1))
         self.chunk = chunk
         self.floor = 1  # lowest bin kept; 1 = every pair
         self.vals, self.keys, self.rows, self.cols = [], [], [], []
@@ -966,8 +1000,8 @@ class _TopImpostors:
 
     def start(self, imp_hist_first_block):
         ge = np.cumsum(imp_hist_first_block[::-1])[::-1]
-        enough = np.flatnonzero(ge >= self.keep)
-        if enough.size:
+        enough = np.flatnonzero(ge >= self.share * ge[0])
+        if enough.size and self.share < 1.0:
             self.floor = max(self.floor, int(enough[-1]))
 
     def visit(self, blocks, r0, s):
@@ -978,7 +1012,7 @@ class _TopImpostors:
             self.rows.append(r.astype(np.int32))
             self.cols.append(c.astype(np.int32))
             self.count += v.size
-        if self.count > 2 * self.keep:
+        if self.count > 3 * self.keep:
             k = np.concatenate(self.keys)
             floor = int(np.partition(k, k.size - self.keep)[k.size - self.keep])
             up = k >= floor
@@ -1174,16 +1208,17 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     curve_points : int, default 512
         About how many ROC/DET points to report (even in log FMR and in FNMR).
     memory_budget : int, default 256 MiB
-        Bytes for the block buffers (9 bytes per score of a block) and for the impostor scores
-        kept in the first pass (16 bytes each).
+        Bytes for the block buffers (13 bytes per score of a block: two products, one computed
+        while the other is counted, and a bin key) and for the impostor scores kept in the
+        first pass (16 bytes each).
     block_rows : int, optional
         Rows per block, overriding ``memory_budget``.
     exact_auc : {"auto", True, False}, default "auto"
         ``True``: list the exact impostor scores of every histogram bin that also holds genuine
         scores (within ``auc_budget``), so that the AUC is exact, even if that takes a second
-        pass. ``"auto"``: do so when a second pass runs anyway, else refine only the bins the
-        first pass kept. ``False``: never. Unlisted bins count their pairs as ties and
-        ``auc_error_bound`` bounds the error.
+        pass. ``"auto"``: list those from the lowest bin an operating point or the bootstrap
+        window needs up (their scores are at hand anyway). ``False``: none. Unlisted bins count
+        their pairs as ties and ``auc_error_bound`` bounds the error.
     auc_budget : int, default 2**24
         Most impostor scores to list for the AUC; the bins with the most (genuine x impostor)
         pairs first.
@@ -1226,7 +1261,8 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     themselves); the impostor count at a threshold, exactly ``sum_{c<c'} w_c w_c' N_cc'``, is
     taken to first order in ``w - 1`` as ``sum_c w_c N_c - N`` (``N_c``: impostor pairs involving
     c), with the same expansion for the impostor total. This needs only per-identity counts at a
-    grid of thresholds (``grid_per_decade`` FMR levels a decade from target/4 to 4 x target),
+    grid of thresholds (``grid_per_decade`` FMR levels a decade from target/f to f x target, f
+    from 8 for few identities down to 1.25 for thousands, as replicates vary less),
     not every identity pair; the quadratic term dropped is small when no small set of identity
     pairs holds most high-scoring impostors (in the simulation tests it moves the interval by
     far less than its width). Each replicate's threshold is the lowest grid threshold with
@@ -1271,10 +1307,10 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     do_ci = bootstrap > 0 and k_ident >= 2 and bool(resolvable)
 
     # how many of the highest impostor scores the operating points and the bootstrap window need
-    top_share = max(resolvable) * (4.0 if do_ci else 1.0) if resolvable else 0.0
+    top_share = max(resolvable) * (_window_factor(k_ident) if do_ci else 1.0) if resolvable else 0.0
     keep = int(math.ceil(1.1 * top_share * n_imp)) + 4096
     chunk = max(1 << 16, memory_budget // 64)
-    top = _TopImpostors(keep, chunk) if 16 * keep <= _KEEP_SHARE * memory_budget else None
+    top = _TopImpostors(keep, n_imp, chunk) if 3 * 16 * keep <= _KEEP_SHARE * memory_budget else None
 
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
     hist_all, gval, gid, ggrp = _pass_one(blocks, top)
@@ -1321,7 +1357,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     else:
         cand = np.flatnonzero(imp_hist)
         # per-identity counts take identities x grid int64s: keep them within 64 MiB
-        bkeys = cand[_boundaries(imp_ge_bin[cand], n_imp, resolvable, grid_per_decade,
+        bkeys = cand[_boundaries(imp_ge_bin[cand], n_imp, resolvable, grid_per_decade, _window_factor(k_ident),
                                  max_levels=max(16, (8 * 2**20) // k_ident))]
         kwin = int(bkeys[0])
     ob = np.unique(np.fromiter(op_bin.values(), np.int64, len(op_bin)))
@@ -1330,15 +1366,17 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
 
     # one pass suffices when the impostors kept in the first pass cover every bin needed
     covered = top.complete_from() if top is not None else _NBINS + 1
-    one_pass = min(list(needed) + [kwin]) >= covered
+    lowest_needed = min(list(needed) + [kwin])
     both = np.flatnonzero((gen_hist > 0) & (imp_hist > 0))
-    if exact_auc is True or (exact_auc == "auto" and not one_pass):
+    if exact_auc is True:
         auc_bins = _auc_bins(both, gen_hist, imp_hist, auc_budget)
-        one_pass = one_pass and (auc_bins.size == 0 or int(auc_bins[0]) >= covered)
     elif exact_auc == "auto":
-        auc_bins = _auc_bins(both, gen_hist, imp_hist, auc_budget, lowest=covered)
+        # the bins from the lowest one the operating points need up are listed anyway; this
+        # choice does not depend on the blocks, so neither does the AUC
+        auc_bins = _auc_bins(both, gen_hist, imp_hist, auc_budget, lowest=lowest_needed)
     else:
         auc_bins = np.empty(0, np.int64)
+    one_pass = min([lowest_needed] + auc_bins[:1].tolist()) >= covered
     collect_bins = np.unique(np.concatenate([np.fromiter(needed, np.int64, len(needed)), auc_bins]))
     code = np.zeros(_NBINS, np.uint8)
     code[collect_bins] = _COLLECT
