@@ -348,6 +348,20 @@ def test_force_and_existing_output(tmp_path, checkpoint_tables):
     assert (out / "sweep.json").is_file() and not (out / "keep.txt").exists()
 
 
+def test_command_line(tmp_path, checkpoint_tables, capsys):
+    from tripletkit.cli import main
+
+    cfg = _write_config(tmp_path, CHECKPOINTS.format(a=checkpoint_tables["good"], b=checkpoint_tables["poor"]))
+    assert main(["sweep", str(cfg), "--out", str(tmp_path / "out"), "--quiet", "--json"]) == 0
+    printed = json.loads(capsys.readouterr().out)
+    assert printed["comparison"]["best"]["margin"] == 0.2 and printed["out"] == str(tmp_path / "out")
+    bad = _write_config(tmp_path, CHECKPOINTS.replace('primary = "eer"', 'primary = "fnmr@0.5"'), "bad.toml")
+    assert main(["sweep", str(bad), "--out", str(tmp_path / "out2")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and err.count("\n") == 1 and "not among [evaluation] fmr" in err
+    assert not (tmp_path / "out2").exists()
+
+
 def test_failure_mid_sweep_leaves_nothing(tmp_path, checkpoint_tables, monkeypatch):
     import tripletkit.sweep as sw
 
