@@ -336,12 +336,12 @@ def _compare(pair_scores, margins, n_identities, primary, bootstrap, confidence,
         "larger_than_noise": None, "replicates_on_full_pair_list": stats["full_list"],
     }
     if not ranked:
-        comparison["verdict"] = f"no comparison: {primary.text} is not defined for any run (see each run's report)"
+        comparison["verdict"] = f"no comparison: {primary.label} is not defined for any run (see each run's report)"
         return per_run, comparison
     best = ranked[0]
     comparison["best"] = {"margin": margins[best], "value": full[best], "ci": per_run[best]["ci"]}
     if len(ranked) < 2:
-        comparison["verdict"] = (f"no comparison: only margin {margins[best]:g} has a defined {primary.text}"
+        comparison["verdict"] = (f"no comparison: only margin {margins[best]:g} has a defined {primary.label}"
                                  if len(margins) > 1 else "no comparison: the sweep has a single run")
         return per_run, comparison
     second = ranked[1]
@@ -353,19 +353,25 @@ def _compare(pair_scores, margins, n_identities, primary, bootstrap, confidence,
     comparison.update(difference=float(diff), ci=ci, replicates_used=int(d.size))
     level = f"{confidence:.0%}"
     if ci is None:
-        comparison["verdict"] = (f"margin {margins[best]:g} has the lower {primary.text}, but no bootstrap replicate "
+        comparison["verdict"] = (f"margin {margins[best]:g} has the lower {primary.label}, but no bootstrap replicate "
                                  "defines it for both runs, so the noise is unknown")
         return per_run, comparison
-    larger = bool(ci[0] > 0 or ci[1] < 0)
+    larger = bool(ci[0] > 0)
     comparison["larger_than_noise"] = larger
     span = f"{level} interval [{ci[0]:.4g}, {ci[1]:.4g}]"
-    if larger:
+    if ci[1] < 0:
+        # Possible only for a skewed resampling distribution: the full sample and the resamples disagree.
         comparison["verdict"] = (
-            f"margin {margins[best]:g} beats margin {margins[second]:g} on {primary.text} by {diff:.4g}: the "
+            f"margin {margins[best]:g} has the lower {primary.label} on the full held-out set, but the resamples "
+            f"favour margin {margins[second]:g} ({span}); the ranking is not stable, so the difference is not "
+            "larger than the noise")
+    elif larger:
+        comparison["verdict"] = (
+            f"margin {margins[best]:g} beats margin {margins[second]:g} on {primary.label} by {diff:.4g}: the "
             f"difference is larger than the noise ({span} excludes 0)")
     else:
         comparison["verdict"] = (
-            f"margin {margins[best]:g} has the lower {primary.text} (by {diff:.4g} over margin {margins[second]:g}), "
+            f"margin {margins[best]:g} has the lower {primary.label} (by {diff:.4g} over margin {margins[second]:g}), "
             f"but the difference is not larger than the noise ({span} includes 0)")
     return per_run, comparison
 
