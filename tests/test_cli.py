@@ -83,3 +83,13 @@ def test_options_are_generated_from_config_fields():
 def test_python_dash_m_and_version():
     out = subprocess.run([sys.executable, "-m", "tripletkit", "--version"], capture_output=True, text=True)
     assert out.returncode == 0 and out.stdout.startswith("tripletkit ")
+
+
+def test_package_exports_the_verbs_as_functions():
+    import importlib
+
+    import tripletkit
+
+    importlib.import_module("tripletkit.sweep")  # importing the submodule must not shadow the verb
+    for name in ("check", "mine", "score", "sweep", "run_demo", "triplet_loss_report"):
+        assert callable(getattr(tripletkit, name)) and not isinstance(getattr(tripletkit, name), type(tripletkit))

@@ -2,7 +2,6 @@
 
 The public verbs are the commands of the ``tripletkit`` CLI: :func:`check`, :func:`mine`,
 :func:`score`, :func:`sweep`, :func:`run_demo`, and :func:`triplet_loss_report` (``tripletkit loss``).
-Heavy modules are imported when a verb is first used, so ``import tripletkit`` stays light.
 """
 
 from ._errors import TripletkitError, TripletkitWarning
@@ -18,23 +17,12 @@ __all__ = [
     "REGIMES", "__version__",
 ]
 
-_LAZY = {
-    "mine": "mining", "score": "evaluate", "sweep": "sweep", "run_demo": "demo",
-    "triplet_loss_report": "triplets", "fit_head": "head", "ProjectionHead": "head",
-    "triplet_loss": "loss", "triplet_loss_grad": "loss", "batch_all_loss": "loss",
-    "batch_hard_loss": "loss", "REGIMES": "loss",
-}
-
-
-def __getattr__(name):
-    if name in _LAZY:
-        import importlib
-
-        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'tripletkit' has no attribute {name!r}")
-
-
-def __dir__():
-    return sorted(set(globals()) | set(__all__))
+# Imported eagerly: a lazy ``sweep`` would be replaced by the submodule of the same name as
+# soon as anything imported ``tripletkit.sweep``.
+from .demo import run_demo  # noqa: E402
+from .evaluate import score  # noqa: E402
+from .head import ProjectionHead, fit_head  # noqa: E402
+from .loss import REGIMES, batch_all_loss, batch_hard_loss, triplet_loss, triplet_loss_grad  # noqa: E402
+from .mining import mine  # noqa: E402
+from .sweep import sweep  # noqa: E402
+from .triplets import triplet_loss_report  # noqa: E402
