@@ -239,7 +239,9 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
     table_options : dict, optional
         Column names and ``drop_invalid`` for reading ``source`` (see :meth:`EmbeddingTable.read`).
     compute : ComputeConfig, optional
-        Reserved for scale-out; a scheduler is not supported yet (an error).
+        With ``compute.scheduler`` set, run on a Dask cluster instead
+        (:func:`tripletkit.distributed.score_on_cluster`; ``source`` must then be a Parquet
+        path the workers can read); the report is the same.
 
     Returns
     -------
@@ -286,10 +288,10 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
             f"config must be an EvaluationConfig (the [evaluation] section), got {type(config).__name__}"
         )
     if compute is not None and getattr(compute, "scheduler", None) is not None:
-        raise TripletkitError(
-            f"scoring on a Dask scheduler (compute scheduler {compute.scheduler!r}) is not available yet; "
-            "leave [compute] scheduler unset to score in this process"
-        )
+        from .distributed import score_on_cluster
+
+        return score_on_cluster(source, out, config=config, force=force, quiet=quiet,
+                                table_options=table_options, compute=compute)
     if out is not None:
         check_output(out, force=force)  # fail before the work, not after it
     cfg = config

@@ -902,7 +902,8 @@ def _config(config, options):
     return override(config, **options)
 
 
-def mine(source, out=None, *, config=None, force=False, quiet=False, return_triplets=False, **options):
+def mine(source, out=None, *, config=None, force=False, quiet=False, return_triplets=False, compute=None,
+         table_options=None, **options):
     """Mine easy, semi-hard and hard triplets from an embedding table.
 
     Parameters
@@ -921,6 +922,13 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         No progress bar (it is also off when stderr is not a terminal).
     return_triplets : bool, default False
         Also return the triplets as arrays (``summary.triplets``).
+    compute : ComputeConfig, optional
+        With ``compute.scheduler`` set, run on a Dask cluster
+        (:func:`tripletkit.distributed.mine_on_cluster`): ``source`` must be a Parquet path the
+        workers can read, and ``out`` becomes a folder of part files; same triplets.
+    table_options : dict, optional
+        Column names and ``drop_invalid`` for reading a path ``source`` (see
+        :meth:`EmbeddingTable.read`).
     **options
         Override fields of ``config`` (validated like config keys), e.g. ``margin=0.3``,
         ``regimes=("hard",)``, ``select="hardest"``.
@@ -957,25 +965,47 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
             src = Path(source).resolve()
             if src in (out.resolve(), dup_out.resolve()):
                 raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
-    table = as_table(source)
+    if compute is not None and compute.scheduler is not None:
+        from .distributed import mine_on_cluster
+
+        return mine_on_cluster(source, out, config=cfg, compute=compute, force=force, quiet=quiet,
+                               return_triplets=return_triplets, table_options=table_options)
+    table = as_table(source, **(table_options or {}))
+    with contextlib.ExitStack() as stack:
+        tmp_out = tmp_dup = None
+        if out is not None:
+            tmp_out = stack.enter_context(atomic_path(out, force=force))
+            tmp_dup = stack.enter_context(atomic_path(dup_out, force=force))
+        summary = _mine_table(table, cfg, tmp_out, tmp_dup, quiet=quiet, return_triplets=return_triplets)
+    summary.seconds = time.perf_counter() - t0
+    if out is not None:
+        summary.out, summary.duplicates_out = str(out), str(dup_out)
+    return summary
+
+
+def _mine_table(table, cfg, tmp_out, tmp_dup, *, quiet=False, return_triplets=False, build=build_index,
+                writer_class=None):
+    """The body of :func:`mine` on a validated table, writing to paths that already are temporary.
+
+    ``build`` makes the search index (:func:`tripletkit.index.build_index` or one of the same
+    signature) and ``writer_class(path, table, metadata)`` the triplet writer (default
+    :class:`_TripletWriter`); ``tripletkit.distributed`` passes its own.
+    """
+    t0 = time.perf_counter()
     if cfg.select == "distance-weighted" and table.dim < 2:
         raise TripletkitError(f"select = distance-weighted needs embeddings of dimension >= 2, got {table.dim}")
     kind = resolve_kind(cfg.index, table.n, cfg.exact_below)
     with faiss_threads(cfg.threads):
-        index = build_index(table.embeddings, kind, nlist=cfg.ivf_nlist, nprobe=cfg.ivf_nprobe,
-                            hnsw_m=cfg.hnsw_m, ef_search=cfg.hnsw_ef_search,
-                            ef_construction=cfg.hnsw_ef_construction, seed=cfg.seed)
+        index = build(table.embeddings, kind, nlist=cfg.ivf_nlist, nprobe=cfg.ivf_nprobe,
+                      hnsw_m=cfg.hnsw_m, ef_search=cfg.hnsw_ef_search,
+                      ef_construction=cfg.hnsw_ef_construction, seed=cfg.seed)
         miner = _Miner(table, cfg, index)
         _warn_degenerate(miner)
         recall, relevant = miner.recall()
         meta = _metadata(cfg, table, index, recall)
         collected = [] if return_triplets else None
         with contextlib.ExitStack() as stack:
-            tmp_out = tmp_dup = None
-            if out is not None:
-                tmp_out = stack.enter_context(atomic_path(out, force=force))
-                tmp_dup = stack.enter_context(atomic_path(dup_out, force=force))
-            writer = _TripletWriter(tmp_out, table, meta)
+            writer = (writer_class or _TripletWriter)(tmp_out, table, meta)
             stack.callback(_close_quietly, writer)
             n = table.n
             block = query_block_rows(n, min(cfg.neighbours, n), cfg.memory_mb, cfg.block_rows)
@@ -998,7 +1028,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     total = int(miner.counts.sum())
     if total == 0 and miner.anchors.size and table.n_identities > 1:
         warnings.warn("no triplet was mined (see pairs_without_negative); active_fraction is null",
-                      TripletkitWarning, stacklevel=2)
+                      TripletkitWarning, stacklevel=3)
     summary = MiningSummary(
         n_triplets=total,
         anchors=int(miner.anchors.size),
@@ -1010,8 +1040,6 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         index=index.kind,
         recall=recall,
         seconds=time.perf_counter() - t0,
-        out=None if out is None else str(out),
-        duplicates_out=None if out is None else str(dup_out),
         triplets=_gather(collected, table) if return_triplets else None,
         details={"pairs": int(miner.pair_a.size), "widened_queries": miner.widened,
                  "easy_scanned_pairs": miner.easy_scanned, "index_params": index.params,
@@ -1036,10 +1064,10 @@ def _is_tty(stream):
 def _warn_degenerate(miner):
     if not miner.anchors.size:
         warnings.warn("no identity has two rows, so there is no anchor; nothing will be mined",
-                      TripletkitWarning, stacklevel=3)
+                      TripletkitWarning, stacklevel=4)
     elif miner.t.n_identities < 2:
         warnings.warn("the table has a single identity, so there are no negatives; nothing will be mined",
-                      TripletkitWarning, stacklevel=3)
+                      TripletkitWarning, stacklevel=4)
 
 
 def _gather(collected, table):

@@ -54,6 +54,8 @@ References
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import math
 import warnings
 from concurrent.futures import ThreadPoolExecutor
@@ -77,6 +79,7 @@ __all__ = [
     "verify_all_pairs",
     "verify_pairs",
     "verify_scores",
+    "block_runner",
     "DEFAULT_FMR_TARGETS",
 ]
 
@@ -891,10 +894,7 @@ class _Blocks:
 
     def __init__(self, x, codes, gcodes, block_rows, memory_budget):
         order = np.argsort(codes, kind="stable")
-        self.codes = codes[order]
-        self.gcodes = None if gcodes is None else gcodes[order]
-        self.xs = np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32)
-        n = self.n = x.shape[0]
+        n = x.shape[0]
         # two float32 products (one being computed while the other is counted) + int32 key
         # (+ one byte of selection) per score of a block
         block_rows_budget = max(1, int(memory_budget // (13 * max(n, 1))))
@@ -902,7 +902,29 @@ class _Blocks:
             # the leading square of each block is computed in full but only its upper half is
             # used: keep blocks to a sixteenth of the rows (at least 256) so that little is wasted
             block_rows = min(block_rows_budget, max(256, n // 16))
-        self.b = int(max(1, min(n, block_rows, (2**31 - 1) // max(n, 1))))
+        self._arrange(np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32), codes[order],
+                      None if gcodes is None else gcodes[order],
+                      int(max(1, min(n, block_rows, (2**31 - 1) // max(n, 1)))))
+
+    @classmethod
+    def arranged(cls, xs, codes, gcodes, b):
+        """Blocks over rows already sorted and scaled: the ``xs``, ``codes``, ``gcodes`` and ``b``
+        of another instance (a copy in another process computes the very same products)."""
+        self = cls.__new__(cls)
+        # Arrays received over a network can start at any byte; OpenBLAS then takes another
+        # path and its products differ in the last bit (measured), so realign them.
+        xs = np.require(xs, np.float32, ["C", "A"])
+        self._arrange(xs, codes, gcodes, b)
+        return self
+
+    def block_starts(self):
+        """First row of every block, in order."""
+        return list(range(0, self.n, self.b))
+
+    def _arrange(self, xs, codes, gcodes, b):
+        self.xs, self.codes, self.gcodes = xs, codes, gcodes
+        n = self.n = xs.shape[0]
+        self.b = int(b)
         self.sizes = np.bincount(self.codes)
         self.starts = np.concatenate([[0], np.cumsum(self.sizes)[:-1]])
         self._s = [np.empty(self.b * n, np.float32), np.empty(self.b * n, np.float32)]
@@ -924,7 +946,7 @@ class _Blocks:
         The next block's product is computed in a second thread while the caller counts the
         current one: BLAS threads then work instead of spinning between calls.
         """
-        starts = list(range(0, self.n, self.b))
+        starts = self.block_starts()
         if len(starts) == 1:
             yield 0, self._product(0, self._s[0])
             return
@@ -1034,15 +1056,56 @@ class _TopImpostors:
         return self.floor
 
 
+def _count_block(blocks, r0, s, hist, tmp):
+    """First-pass work on one block's products: add their bins to ``hist`` (``tmp`` is left
+    holding this block's histogram) and return its genuine scores (see :meth:`_Blocks.genuine`)."""
+    k = _keys_of(s, blocks.kbuf[: s.size].reshape(s.shape))
+    _hist_into(k, hist, tmp)
+    return blocks.genuine(r0, s)
+
+
+def _genuine_arrays(gvals, gids, ggrps):
+    gval = np.concatenate(gvals) if gvals else np.empty(0, np.float32)
+    gid = np.concatenate(gids) if gids else np.empty(0, np.int64)
+    ggrp = np.concatenate(ggrps) if ggrps else None
+    return gval, gid, ggrp
+
+
+def count_blocks(blocks, starts):
+    """The counting pass over the blocks beginning at rows ``starts`` (no impostors kept).
+
+    A building block for running the first pass of :func:`verify_all_pairs` elsewhere (see
+    :func:`block_runner`). Returns ``(hist, gval, gid, ggrp)``: the bin counts of every score
+    of these blocks and their genuine scaled scores with identity and pair group (``ggrp``
+    None without groups). Summing ``hist`` and concatenating the rest over a partition of all
+    blocks gives what the in-process pass gives.
+    """
+    hist = np.zeros(_NBINS, np.int64)
+    tmp = np.empty(_NBINS, np.int32)
+    gvals, gids, ggrps = [], [], []
+    for r0 in starts:
+        v, i, g = _count_block(blocks, r0, blocks._product(r0, blocks._s[0]), hist, tmp)
+        gvals += v
+        gids += i
+        ggrps += g
+    return (hist, *_genuine_arrays(gvals, gids, ggrps))
+
+
+def refine_blocks(blocks, starts, ref, chunk, use_table):
+    """The second pass of :func:`verify_all_pairs` over the blocks beginning at rows ``starts``:
+    ``ref`` (a :class:`_Refiner`) sees their impostor scores (a building block, like
+    :func:`count_blocks`)."""
+    for r0 in starts:
+        ref.visit(blocks, r0, blocks._product(r0, blocks._s[0]), chunk, use_table)
+
+
 def _pass_one(blocks, top):
     hist = np.zeros(_NBINS, np.int64)
     tmp = np.empty(_NBINS, np.int32)
     gvals, gids, ggrps = [], [], []
     first = True
     for r0, s in blocks:
-        k = _keys_of(s, blocks.kbuf[: s.size].reshape(s.shape))
-        _hist_into(k, hist, tmp)
-        v, i, g = blocks.genuine(r0, s)
+        v, i, g = _count_block(blocks, r0, s, hist, tmp)
         gvals += v
         gids += i
         ggrps += g
@@ -1055,10 +1118,7 @@ def _pass_one(blocks, top):
                 top.start(imp)
                 first = False
             top.visit(blocks, r0, s)
-    gval = np.concatenate(gvals) if gvals else np.empty(0, np.float32)
-    gid = np.concatenate(gids) if gids else np.empty(0, np.int64)
-    ggrp = np.concatenate(ggrps) if ggrps else None
-    return hist, gval, gid, ggrp
+    return (hist, *_genuine_arrays(gvals, gids, ggrps))
 
 
 class _Refiner:
@@ -1070,6 +1130,8 @@ class _Refiner:
     """
 
     def __init__(self, code, kwin, cell_of, n_ident, n_cells, gcell_of, n_groups, n_gcells):
+        # kept so that a copy elsewhere (see block_runner) can be built with the same arguments
+        self.args = (code, kwin, cell_of, n_ident, n_cells, gcell_of, n_groups, n_gcells)
         self.code = code
         self.want = code != 0
         nz = np.flatnonzero(code)
@@ -1152,6 +1214,24 @@ class _Refiner:
             same = g >= 0
             self.gwin += np.bincount(g[same] * self.n_gcells + self.gcell_of[kw[same]], minlength=self.gwin.size)
 
+    def export(self):
+        """What this refiner gathered, for :meth:`absorb` by one built with the same ``args``."""
+        vals, keys, pg = self.finish()
+        return vals, keys, pg, self.win, self.gwin, self.examined
+
+    def absorb(self, part):
+        """Add what another refiner (same ``args``) gathered from other blocks (see :meth:`export`)."""
+        vals, keys, pg, win, gwin, examined = part
+        self.values.append(vals)
+        self.keys.append(keys)
+        if pg is not None:
+            self.pgroup.append(pg)
+        if win is not None:
+            self.win += win
+        if gwin is not None:
+            self.gwin += gwin
+        self.examined += int(examined)
+
     def finish(self):
         if self.win is not None:
             self._flush()
@@ -1181,6 +1261,30 @@ def _auc_bins(both, gen_hist, imp_hist, budget, lowest=None):
     order = np.argsort(-(gen_hist[both] * imp_hist[both]), kind="stable")
     fit = np.cumsum(cost[order]) <= budget
     return np.sort(both[order[fit]])
+
+# Who runs the passes over the row blocks of verify_all_pairs; None: this process, in order.
+_BLOCK_RUNNER = contextvars.ContextVar("tripletkit_block_runner", default=None)
+
+
+@contextlib.contextmanager
+def block_runner(runner):
+    """Within the ``with`` block, :func:`verify_all_pairs` hands its passes over row blocks to ``runner``.
+
+    ``runner.first_pass(blocks)`` must return what :func:`count_blocks` returns for all blocks
+    (``blocks.block_starts()``), summed and concatenated in block order, and
+    ``runner.second_pass(blocks, ref, chunk, use_table)`` must leave ``ref`` as
+    :func:`refine_blocks` over all blocks would (e.g. by :meth:`_Refiner.absorb` of the
+    :meth:`_Refiner.export` of copies that each saw some blocks). ``tripletkit.distributed``
+    runs them as Dask tasks. Every number of the report is the same as in this process when the
+    runner computes the same products (same rows, same blocks, same BLAS build and thread
+    count); ``passes`` is then always 2, since impostors are not kept across blocks.
+    """
+    token = _BLOCK_RUNNER.set(runner)
+    try:
+        yield runner
+    finally:
+        _BLOCK_RUNNER.reset(token)
+
 
 def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR_TARGETS, bootstrap=200,
                      confidence=0.95, seed=0, curve_points=512, memory_budget=256 * 2**20, block_rows=None,
@@ -1313,7 +1417,12 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     top = _TopImpostors(keep, n_imp, chunk) if 3 * 16 * keep <= _KEEP_SHARE * memory_budget else None
 
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
-    hist_all, gval, gid, ggrp = _pass_one(blocks, top)
+    runner = _BLOCK_RUNNER.get()
+    if runner is None:
+        hist_all, gval, gid, ggrp = _pass_one(blocks, top)
+    else:
+        top = None  # a runner's blocks are counted apart, so the refined bins come from a second pass
+        hist_all, gval, gid, ggrp = runner.first_pass(blocks)
     gkey = _keys_of(gval).astype(np.int64)
     gval = gval.astype(np.float64) / _SCORE_SCALE  # exact: undoes a power-of-two scaling
     gen_hist = np.bincount(gkey, minlength=_NBINS).astype(np.int64)
@@ -1404,8 +1513,11 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         above = int(hist_all[ref.kmin :].sum()) if ref.smin is not None else 0
         use_table = above > _TABLE_SHARE * (n_gen + n_imp)
         del top
-        for r0, s in blocks:
-            ref.visit(blocks, r0, s, chunk, use_table)
+        if runner is not None:
+            runner.second_pass(blocks, ref, chunk, use_table)
+        else:
+            for r0, s in blocks:
+                ref.visit(blocks, r0, s, chunk, use_table)
     cvals, ckeys, cgrp = ref.finish()
     cvals = cvals.astype(np.float64) / _SCORE_SCALE
 

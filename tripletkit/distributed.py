@@ -1,0 +1,681 @@
+"""Scale-out on Dask: run the blocked plans of ``mine`` and ``score`` on a cluster.
+
+Chosen by one option, ``compute.scheduler`` (``--scheduler``, or ``scheduler`` in the
+``[compute]`` section): the address of a running Dask scheduler (``tcp://host:8786``) or
+``local-cluster``, which starts a :class:`distributed.LocalCluster` of ``compute.workers``
+single-threaded worker processes for the run and closes it afterwards. Without it nothing here
+is imported and Dask is not needed (it is the optional extra ``tripletkit[dask]``).
+
+Every worker, and the client, must see the input table and the output folder under the same
+path (a shared filesystem); paths are made absolute on the client. The client reads nothing but
+the file names: the workers read the Parquet dataset.
+
+Scoring (:func:`score_on_cluster`)
+----------------------------------
+One driver task reads and validates the table on a worker (the same code as in one process) and
+runs :func:`tripletkit.evaluate.score` there, with the all-pairs verification handed to
+:func:`tripletkit.metrics.verification.block_runner`: its row blocks (a block of rows against
+all later rows, the upper triangle) go out in groups of about equal work as Dask tasks; each
+task returns its bin counts and genuine scores, the counts are summed, and in the second pass
+each task returns the exact impostor scores of the bins that hold an operating point and its
+window counts, which are merged. Retrieval, clustering and health run in the driver. The
+identity-sorted, scaled matrix is scattered to every worker once (each block multiplies a block
+of rows with all later rows).
+
+Why row blocks and not smaller (row block, column block) tiles: BLAS float32 products depend on
+the shape of the call and on the BLAS thread count (measured with OpenBLAS 0.3.31: 3.4% of the
+products of a 256-row block change in the last bit when it is multiplied with 500 instead of
+2744 columns, and the demo report's AUC changes between 1 and 2 BLAS threads). The tasks make
+the very calls of the single-process plan, with the BLAS and OpenMP thread counts of the client
+process, so the report is identical to the single-process one computed on the same kind of
+machine, except ``verification.passes`` (always 2 here; the single-process plan may list the
+refined bins from impostors kept in its first pass) and the timings.
+
+Mining (:func:`mine_on_cluster`)
+--------------------------------
+The gallery is split into ``compute.partitions`` shards of consecutive rows (default twice the
+workers). Each shard is a Dask task that reads its rows from the Parquet dataset and
+normalises them exactly as :class:`~tripletkit.table.EmbeddingTable` does. A driver task reads
+the table on a worker and runs the miner of :func:`tripletkit.mining.mine` unchanged, with a
+search index whose every query (a block of anchors and their thresholds) becomes one task per
+shard: the shard's exact faiss index returns every row above each anchor's threshold (widened
+as needed, :meth:`tripletkit.index.SearchIndex.within_pieces`) and its top-k; the candidates of
+the shards are merged, the top-k lists by a top-k merge, and selection runs in the driver as in
+one process. faiss scores only pre-select (with the float32 safety band) and every decision is
+made on float64 cosines, so with the exact index the triplets are the same as in one process,
+row for row (only ``index = exact`` is available here; ``auto`` must resolve to it).
+
+The output is a folder ``OUT`` of part files ``part-00000.parquet``, ``part-00001.parquet``, ...
+of at most :data:`PART_ROWS` triplets each, in the row order of the single file (read it with
+``pyarrow.parquet.read_table(OUT)``), and ``<stem>.duplicates.parquet`` beside it, as in one
+process.
+
+Faults
+------
+Tasks are pure functions of their inputs (file names, row ranges, arrays), so when a worker is
+lost the scheduler reruns what it held on another worker; when the lost worker ran the driver,
+the driver starts again (its shard tasks are found again by key when still held) and the result
+is the same. Output is written into ``.OUT.tmp-*/.attempt-*/`` by the driver and moved into
+place by the client only when the driver has returned, so a retried driver never mixes with the
+parts of an earlier attempt. When the client dies: an exception, Ctrl-C or SIGTERM removes the
+temporary folder (a driver still running then stops at its next block, which checks for its
+folder); a hard kill (SIGKILL, power loss) leaves the dot-prefixed ``.OUT.tmp-*`` folder
+behind, and a driver still running on a remote cluster may go on writing into it until it
+finishes. ``OUT`` itself is never half-written: it appears by one rename or not at all.
+
+Dask moves task arguments and results between its processes with its own serialisation (pickle
+among them): connect only to a scheduler you trust.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import functools
+import hashlib
+import operator
+import os
+import shutil
+import sys
+import time
+import uuid
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._errors import TripletkitError, TripletkitWarning
+from ._io import atomic_path, check_output
+from .config import ComputeConfig
+from .index import SearchIndex, _csr, build_index
+from .table import EmbeddingTable
+
+__all__ = ["LOCAL_CLUSTER", "PART_ROWS", "cluster", "mine_on_cluster", "score_on_cluster"]
+
+#: The ``scheduler`` value that starts a local cluster for the run.
+LOCAL_CLUSTER = "local-cluster"
+#: Most triplets per part file of a mining output folder (16 row groups of the single file).
+PART_ROWS = 1 << 20
+# Largest query payload sent with one search task (bytes); larger blocks are cut into chunks.
+_QUERY_BYTES = 4 << 20
+
+
+def _say(quiet, verb, text):
+    if not quiet:
+        print(f"[{verb}] {text}", file=sys.stderr, flush=True)
+
+
+# ---------------------------------------------------------------------------------------------
+# the cluster
+# ---------------------------------------------------------------------------------------------
+def _distributed():
+    try:
+        import distributed
+    except ImportError:
+        raise TripletkitError(
+            "a Dask scheduler was requested but Dask is not installed; pip install 'tripletkit[dask]' "
+            "or leave [compute] scheduler unset"
+        ) from None
+    return distributed
+
+
+@contextlib.contextmanager
+def cluster(compute):
+    """A ``distributed.Client`` for ``compute.scheduler``, closed (with its local cluster) after.
+
+    Parameters
+    ----------
+    compute : ComputeConfig
+        ``scheduler``: ``"local-cluster"`` starts a ``LocalCluster`` of ``workers`` worker
+        processes with one thread each; anything else is a scheduler address.
+    """
+    distributed = _distributed()
+    if not isinstance(compute, ComputeConfig) or compute.scheduler is None:
+        raise TripletkitError("compute must be a ComputeConfig with a scheduler ('local-cluster' or an address)")
+    if compute.scheduler == LOCAL_CLUSTER:
+        local = distributed.LocalCluster(n_workers=compute.workers, threads_per_worker=1, processes=True,
+                                         dashboard_address=None, silence_logs=40)
+        try:
+            with distributed.Client(local) as client:
+                yield client
+        finally:
+            local.close()
+        return
+    try:
+        client = distributed.Client(compute.scheduler, timeout="20s")
+    except (OSError, TimeoutError, ValueError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise TripletkitError(
+            f"cannot reach the Dask scheduler {compute.scheduler!r} ({msg}); check the address "
+            "(tcp://host:8786) or use --scheduler local-cluster"
+        ) from None
+    with client:
+        yield client
+
+
+def _shards(client, compute):
+    """Number of shards (mining) or task groups (scoring): ``partitions``, else twice the workers."""
+    if compute.partitions:
+        return int(compute.partitions)
+    return 2 * max(1, len(client.scheduler_info().get("workers", {})))
+
+
+def _thread_limits():
+    """BLAS and OpenMP thread counts of this process, by library (float32 products depend on them)."""
+    from threadpoolctl import threadpool_info
+
+    from . import index  # noqa: F401  (loads faiss, its BLAS and OpenMP, so that they are listed)
+
+    return {info["prefix"]: int(info["num_threads"]) for info in threadpool_info()}
+
+
+@contextlib.contextmanager
+def _limits(limits):
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=limits):
+        yield
+
+
+# ---------------------------------------------------------------------------------------------
+# the input
+# ---------------------------------------------------------------------------------------------
+def _source(source, table_options):
+    """(absolute path the workers read, path as given, table options, fingerprint to match or None)."""
+    options = dict(table_options or {})
+    if isinstance(source, EmbeddingTable):
+        if source.source is None:
+            raise TripletkitError(
+                "with a scheduler the table must be a Parquet path (file or folder) every worker can read; "
+                "this EmbeddingTable was built in memory"
+            )
+        # Re-read on the cluster; fingerprint and groups prove it is the same table.
+        return str(Path(source.source).resolve()), source.source, options, _identity(source)
+    if not isinstance(source, (str, Path)):
+        raise TripletkitError(
+            f"with a scheduler the table must be a Parquet path (file or folder) every worker can read, "
+            f"got {type(source).__name__}"
+        )
+    p = Path(source)
+    if not p.exists():
+        raise TripletkitError(f"embedding table {str(p)!r} does not exist; check the path")
+    return str(p.resolve()), str(source), options, None
+
+
+def _identity(table):
+    """What must match when a table is read again: its fingerprint and its groups."""
+    groups = None
+    if table.groups is not None:
+        groups = hashlib.blake2b("\x1f".join(map(str, table.groups.tolist())).encode(), digest_size=16).hexdigest()
+    return table.fingerprint, groups
+
+
+def _read_table(path, options, expect):
+    table = EmbeddingTable.read(path, **options)
+    if expect is not None and _identity(table) != expect:
+        raise TripletkitError(
+            f"the table read on the cluster from {path!r} is not the EmbeddingTable given (other columns or "
+            "options?); pass the path and its table_options instead"
+        )
+    return table
+
+
+def _files(path):
+    """The Parquet files of a table path, in the order :class:`EmbeddingTable` reads them."""
+    p = Path(path)
+    if p.is_dir():
+        return sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
+    return [str(p)]
+
+
+def _read_rows(files, lo, hi):
+    """Rows [lo, hi) of the files read one after another, reading only the row groups needed."""
+    pieces, start = [], 0
+    for f in files:
+        meta = pq.ParquetFile(f).metadata
+        if start + meta.num_rows > lo and start < hi:
+            pf = pq.ParquetFile(f)
+            g0 = start
+            for g in range(meta.num_row_groups):
+                m = meta.row_group(g).num_rows
+                if g0 + m > lo and g0 < hi:
+                    a, b = max(0, lo - g0), min(m, hi - g0)
+                    pieces.append(pf.read_row_group(g).slice(a, b - a).replace_schema_metadata(None))
+                g0 += m
+        start += meta.num_rows
+        if start >= hi:
+            break
+    return pa.concat_tables(pieces)
+
+
+def _digest(rows):
+    return hashlib.blake2b(np.ascontiguousarray(rows).tobytes(), digest_size=16).hexdigest()
+
+
+# ---------------------------------------------------------------------------------------------
+# scoring
+# ---------------------------------------------------------------------------------------------
+def _cost_groups(blocks, parts):
+    """Consecutive row blocks in ``parts`` groups of about equal products (a block's products are
+    its rows times the rows from its first on)."""
+    starts = blocks.block_starts()
+    cost = np.array([(min(blocks.n, r0 + blocks.b) - r0) * (blocks.n - r0) for r0 in starts], np.float64)
+    edges = np.searchsorted(np.cumsum(cost), np.linspace(0, cost.sum(), parts + 1)[1:-1], side="left")
+    return [g.tolist() for g in np.split(np.array(starts), np.unique(edges + 1)) if g.size]
+
+
+def _count_task(xs, codes, gcodes, b, starts, limits):
+    from .metrics import verification
+
+    blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
+    with _limits(limits):
+        return verification.count_blocks(blocks, starts)
+
+
+def _refine_task(xs, codes, gcodes, b, starts, args, chunk, use_table, limits):
+    from .metrics import verification
+
+    blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
+    ref = verification._Refiner(*args)
+    with _limits(limits):
+        verification.refine_blocks(blocks, starts, ref, chunk, use_table)
+    return ref.export()
+
+
+def _add(a, b):
+    return a + b
+
+
+def _tree_sum(client, futures):
+    """Sum arrays held by workers pairwise on the workers; the client fetches only the total."""
+    while len(futures) > 1:
+        nxt = [client.submit(_add, futures[i], futures[i + 1], pure=False) for i in range(0, len(futures) - 1, 2)]
+        if len(futures) % 2:
+            nxt.append(futures[-1])
+        futures = nxt
+    return futures[0].result()
+
+
+class _BlockRunner:
+    """Runs the passes of ``verify_all_pairs`` as Dask tasks (see ``verification.block_runner``)."""
+
+    def __init__(self, client, parts, limits):
+        self.client = client
+        self.parts = parts
+        self.limits = limits
+        self.data = None
+
+    def _share(self, blocks):
+        if self.data is None:
+            xs, codes = self.client.scatter([blocks.xs, blocks.codes], broadcast=True, hash=False)
+            gcodes = None
+            if blocks.gcodes is not None:
+                gcodes = self.client.scatter([blocks.gcodes], broadcast=True, hash=False)[0]
+            self.data = (xs, codes, gcodes, blocks.b)
+            self.groups = _cost_groups(blocks, self.parts)
+        return self.data
+
+    def first_pass(self, blocks):
+        data = self._share(blocks)
+        futs = [self.client.submit(_count_task, *data, g, self.limits, pure=False) for g in self.groups]
+        hist = _tree_sum(self.client, [self.client.submit(operator.itemgetter(0), f, pure=False) for f in futs])
+        parts = [self.client.submit(operator.itemgetter(1, 2, 3), f, pure=False) for f in futs]
+        gvals, gids, ggrps = [], [], []
+        for f in parts:  # in block order, one at a time
+            v, i, g = f.result()
+            gvals.append(v)
+            gids.append(i)
+            if g is not None:
+                ggrps.append(g)
+        del futs, parts
+        from .metrics.verification import _genuine_arrays
+
+        return (hist, *_genuine_arrays(gvals, gids, ggrps))
+
+    def second_pass(self, blocks, ref, chunk, use_table):
+        if ref.smin is None:
+            return  # no bin to list: the pass would look at nothing
+        data = self._share(blocks)
+        args = self.client.scatter([ref.args], broadcast=True, hash=False)[0]
+        futs = [self.client.submit(_refine_task, *data, g, args, chunk, use_table, self.limits, pure=False)
+                for g in self.groups]
+        for f in futs:  # absorbed in block order, one at a time (window counts can be large)
+            ref.absorb(f.result())
+            f.release()
+
+
+def _score_task(path, options, expect, config, limits, parts):
+    from distributed import worker_client
+
+    from .evaluate import score
+    from .metrics.verification import block_runner
+
+    table = _read_table(path, options, expect)
+    with _limits(limits), worker_client() as client, block_runner(_BlockRunner(client, parts, limits)):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # the report lists them; the client issues them again
+            return score(table, config=config, quiet=True)
+
+
+def score_on_cluster(source, out=None, *, config=None, compute, force=False, quiet=False, table_options=None):
+    """:func:`tripletkit.evaluate.score` on a Dask cluster; the same report.
+
+    Parameters
+    ----------
+    source : str or Path
+        Parquet file or folder every worker can read (an :class:`EmbeddingTable` read from a
+        path is re-read on the cluster and must have the same fingerprint).
+    out, config, force, quiet, table_options
+        As in :func:`tripletkit.evaluate.score`; the report folder is written by the client.
+    compute : ComputeConfig
+        ``scheduler`` (required), ``workers`` (local cluster), ``partitions`` (task groups per
+        pass; 0: twice the workers).
+
+    Returns
+    -------
+    dict
+        The report of :func:`tripletkit.evaluate.score`. Equal to the single-process report except ``verification.passes``,
+        ``seconds`` and ``stage_seconds`` when the workers run the same BLAS build on the same
+        CPU type (see the module notes).
+    """
+    from .config import EvaluationConfig
+    from .report import write_report
+
+    t0 = time.perf_counter()
+    config = EvaluationConfig() if config is None else config
+    if not isinstance(config, EvaluationConfig):
+        raise TripletkitError(
+            f"config must be an EvaluationConfig (the [evaluation] section), got {type(config).__name__}"
+        )
+    if out is not None:
+        check_output(out, force=force)
+    path, shown, options, expect = _source(source, table_options)
+    run_config = config
+    if config.pairs is not None:  # the workers need a path they can resolve
+        run_config = dataclasses.replace(config, pairs=str(Path(config.pairs).resolve()))
+    limits = _thread_limits()
+    with cluster(compute) as client:
+        parts = _shards(client, compute)
+        workers = len(client.scheduler_info().get("workers", {}))
+        _say(quiet, "score", f"on {compute.scheduler} ({workers} workers), verification in {parts} task groups")
+        fut = client.submit(_score_task, path, options, expect, run_config, limits, parts,
+                            key=f"tripletkit-score-driver-{uuid.uuid4().hex}")
+        report = fut.result()
+    # the paths as the caller gave them, as in one process
+    report["input"]["path"] = shown
+    report["input"]["pair_list"] = None if config.pairs is None else str(config.pairs)
+    report["config"] = dataclasses.asdict(config)
+    for text in report["warnings"]:
+        warnings.warn(text, TripletkitWarning, stacklevel=3)
+    report["seconds"] = time.perf_counter() - t0
+    if out is not None:
+        _say(quiet, "score", f"writing {out}")
+        with atomic_path(out, force=force, directory=True) as tmp:
+            report = write_report(report, tmp, plots=config.plots)
+    return report
+
+
+# ---------------------------------------------------------------------------------------------
+# mining
+# ---------------------------------------------------------------------------------------------
+def _load_shard(files, options, lo, hi):
+    """Rows [lo, hi) of the dataset, validated and normalised as EmbeddingTable.read does them."""
+    arrow = _read_rows(files, lo, hi)
+    cols = {k: v for k, v in options.items() if k != "drop_invalid"}
+    try:
+        table = EmbeddingTable.from_arrow(arrow, **cols, drop_invalid=bool(options.get("drop_invalid")))
+    except TripletkitError:
+        if not options.get("drop_invalid"):
+            raise
+        # the whole table was read without error, so this shard holds invalid rows only
+        emb = arrow.column(options.get("embedding_column", "embedding")).type
+        return np.empty((0, emb.list_size if pa.types.is_fixed_size_list(emb) else 0), np.float32)
+    return table.embeddings
+
+
+def _shard_summary(rows):
+    return int(rows.shape[0]), _digest(rows)
+
+
+def _search_task(rows, queries, thresholds, k, memory_mb, keep_topk):
+    """Every shard row above each query's threshold (shard positions), and the shard's top-k."""
+    q = queries.shape[0]
+    widened = np.zeros(q, bool)
+    if rows.shape[0] == 0:
+        e = np.zeros(0, np.int64)
+        top = (np.zeros((q, 0), np.float32), np.zeros((q, 0), np.int64)) if keep_topk else None
+        return e, e, np.zeros(0, np.float32), widened, top
+    # aligned copies of what arrived over the network (faiss reads them with vector loads)
+    rows, queries = (np.require(a, np.float32, ["C", "A"]) for a in (rows, queries))
+    index = build_index(rows, "exact")
+    qs, rs, ss, top = [], [], [], None
+    for sel, nb in index.within_pieces(queries, thresholds, k, memory_mb=memory_mb, keep_topk=keep_topk):
+        qs.append(np.repeat(sel, np.diff(nb.lims)))
+        rs.append(nb.rows)
+        ss.append(nb.scores)
+        if nb.widened:
+            widened[sel] = True
+        if nb.topk is not None:
+            top = nb.topk[:2]
+    return np.concatenate(qs), np.concatenate(rs), np.concatenate(ss), widened, top
+
+
+class _ShardedIndex(SearchIndex):
+    """An exact index whose rows are shards held by Dask workers; answers as one index would.
+
+    Only :meth:`within_pieces` (and what is built on it) is distributed; it is what the miner uses.
+    """
+
+    def __init__(self, client, shards, offsets, n, dim, folder=None):
+        super().__init__(None, "exact", n, dim, {})
+        self.client = client
+        self.shards = shards
+        self.offsets = offsets
+        self.folder = folder
+
+    def within_pieces(self, queries, thresholds, k, *, memory_mb=1024, keep_topk=False):
+        if self.folder is not None and not Path(self.folder).is_dir():
+            # the client removed its temporary output: it was interrupted, so stop here
+            raise TripletkitError(f"output folder {self.folder!r} was removed; the run was cancelled")
+        thresholds = np.asarray(thresholds, dtype=np.float64)
+        q = queries.shape[0]
+        k = int(min(max(1, k), self.n))
+        step = int(max(1, _QUERY_BYTES // (4 * self.dim)))
+        chunks = [np.arange(s, min(q, s + step)) for s in range(0, q, step)]
+        # every chunk's tasks are submitted first, so the workers search while the miner selects
+        pending = [[self.client.submit(_search_task, shard, np.ascontiguousarray(queries[sel]), thresholds[sel], k,
+                                       memory_mb, keep_topk, pure=False) for shard in self.shards]
+                   for sel in chunks]
+        for sel, futs in zip(chunks, pending):
+            parts = self.client.gather(futs)
+            yield sel, self._merge(parts, sel.size, k, keep_topk)
+
+    def _merge(self, parts, q, k, keep_topk):
+        qs = np.concatenate([p[0] for p in parts])
+        rs = np.concatenate([p[1] + off for p, off in zip(parts, self.offsets)])
+        ss = np.concatenate([p[2] for p in parts])
+        widened = int(np.logical_or.reduce([p[3] for p in parts]).sum())
+        topk = None
+        if keep_topk:
+            # top-k merge: a row missing from the merged list scores at most its k-th score
+            D = np.concatenate([p[4][0] for p in parts], axis=1)
+            I = np.concatenate([p[4][1] + off for p, off in zip(parts, self.offsets)], axis=1)
+            order = np.argsort(-D, axis=1, kind="stable")[:, :k]
+            D, I = np.take_along_axis(D, order, axis=1), np.take_along_axis(I, order, axis=1)
+            topk = (D, I, self._bound(D, I, k))
+        order = np.lexsort((rs, qs))
+        return _csr(qs[order], rs[order], ss[order], q, widened, topk)
+
+
+def _build_sharded(client, files, options, table, parts, folder, embeddings, kind, **_):
+    """The ``build`` hook of the miner: shards loaded by the workers, checked against the driver's rows."""
+    if kind != "exact":
+        raise TripletkitError(
+            f"index = {kind} is not available with a scheduler; use index = exact (with index = auto, raise "
+            "exact_below above the number of rows) or run without a scheduler"
+        )
+    counts = [pq.ParquetFile(f).metadata.num_rows for f in files]
+    total = int(sum(counts))
+    edges = np.linspace(0, total, min(parts, total) + 1).round().astype(np.int64)
+    # pure: the same shard gets the same key, so a driver started again finds shards still held
+    shards = [client.submit(_load_shard, files, options, int(a), int(b), pure=True)
+              for a, b in zip(edges[:-1], edges[1:])]
+    info = client.gather([client.submit(_shard_summary, s, pure=False) for s in shards])
+    sizes = np.array([m for m, _ in info], np.int64)
+    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    if int(sizes.sum()) != table.n:
+        raise TripletkitError(f"the workers read {int(sizes.sum())} valid rows from {files[0]!r}..., the driver "
+                              f"{table.n}; the dataset changed during the run or differs between machines")
+    for (m, digest), off in zip(info, offsets):
+        if digest != _digest(embeddings[off:off + m]):
+            raise TripletkitError(f"rows {off}..{off + m - 1} read by a worker differ from the driver's; the dataset "
+                                  "changed during the run or differs between machines")
+    return _ShardedIndex(client, shards, offsets, table.n, table.dim, folder)
+
+
+class _PartWriter:
+    """The triplet writer of a mining output folder: ``part-00000.parquet``, ... of at most
+    ``part_rows`` triplets each (a multiple of the row group size), rows in the single file's order."""
+
+    def __init__(self, folder, table, metadata, part_rows=PART_ROWS):
+        from .mining import _TripletWriter
+
+        self._writer_class = _TripletWriter
+        self.folder = None if folder is None else Path(folder)
+        self.table, self.metadata = table, metadata
+        self.part_rows = int(part_rows)
+        self.parts, self.current, self.rows = [], None, 0
+
+    @property
+    def writer(self):
+        """The open ParquetWriter, if any (what ``mining._close_quietly`` closes)."""
+        return None if self.current is None else self.current.writer
+
+    def _open(self):
+        name = f"part-{len(self.parts):05d}.parquet"
+        self.current = self._writer_class(self.folder / name, self.table, self.metadata)
+        self.parts.append(name)
+        self.rows = 0
+
+    def add(self, arrays):
+        if self.folder is None:
+            return
+        n, pos = len(arrays["anchor"]), 0
+        while pos < n:
+            if self.current is None:
+                self._open()
+            take = min(n - pos, self.part_rows - self.rows)
+            self.current.add({key: v[pos:pos + take] for key, v in arrays.items()})
+            pos += take
+            self.rows += take
+            if self.rows == self.part_rows:
+                self.current.close()
+                self.current = None
+
+    def close(self):
+        if self.folder is None:
+            return
+        if self.current is None and not self.parts:
+            self._open()  # no triplet: one empty part keeps the schema and metadata readable
+        if self.current is not None:
+            self.current.close()
+            self.current = None
+
+
+def _mine_task(path, options, expect, config, folder, parts, part_rows, return_triplets):
+    from distributed import worker_client
+
+    from .mining import _mine_table
+
+    table = _read_table(path, options, expect)
+    attempt = None
+    if folder is not None:
+        # a fresh folder per attempt: a driver started again never writes beside an earlier one
+        attempt = Path(folder) / f".attempt-{uuid.uuid4().hex}"
+        attempt.mkdir()
+    with worker_client() as client, warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        build = functools.partial(_build_sharded, client, _files(path), options, table, parts,
+                                  None if attempt is None else str(attempt))
+        summary = _mine_table(table, config, attempt, None if attempt is None else attempt / "duplicates.parquet",
+                              quiet=True, return_triplets=return_triplets, build=build,
+                              writer_class=functools.partial(_PartWriter, part_rows=part_rows))
+    notes = [(str(w.message), w.category.__name__) for w in caught if issubclass(w.category, TripletkitWarning)]
+    return summary, None if attempt is None else str(attempt), notes
+
+
+def _settle(folder, attempt, dup_tmp):
+    """Move the winning attempt's parts into ``folder`` and its duplicates to ``dup_tmp``; drop the rest."""
+    attempt = Path(attempt)
+    os.replace(attempt / "duplicates.parquet", dup_tmp)
+    for part in sorted(attempt.glob("part-*.parquet")):
+        os.replace(part, Path(folder) / part.name)
+    for entry in Path(folder).iterdir():
+        if entry.name.startswith(".") and entry.is_dir():
+            shutil.rmtree(entry, ignore_errors=True)
+
+
+def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quiet=False, return_triplets=False,
+                    table_options=None, part_rows=PART_ROWS):
+    """:func:`tripletkit.mining.mine` on a Dask cluster: the same triplets, written as a folder of parts.
+
+    Parameters
+    ----------
+    source : str or Path
+        Parquet file or folder every worker can read (an :class:`EmbeddingTable` read from a
+        path is re-read on the cluster and must have the same fingerprint).
+    out : str or Path, optional
+        Output folder (created atomically) of ``part-NNNNN.parquet`` files; the suspect
+        duplicates go to ``<stem>.duplicates.parquet`` beside it, as in one process.
+    config : MiningConfig, optional
+        Mining options; ``index`` must be (or resolve to) ``exact``.
+    compute : ComputeConfig
+        ``scheduler`` (required), ``workers`` (local cluster), ``partitions`` (gallery shards;
+        0: twice the workers).
+    force, quiet, return_triplets, table_options
+        As in :func:`tripletkit.mining.mine`.
+    part_rows : int, default PART_ROWS
+        Most triplets per part file.
+
+    Returns
+    -------
+    MiningSummary
+        As in one process; ``details`` adds ``shards``, ``parts`` and ``scheduler``.
+    """
+    from .mining import MiningConfig, _config, duplicates_path
+
+    t0 = time.perf_counter()
+    cfg = _config(config, {})
+    if not isinstance(cfg, MiningConfig):
+        raise TripletkitError(f"config must be a MiningConfig (or None), got {type(cfg).__name__}")
+    path, shown, options, expect = _source(source, table_options)
+    dup_out = None
+    if out is not None:
+        out = Path(out)
+        dup_out = duplicates_path(out)
+        check_output(out, force=force)
+        check_output(dup_out, force=force)
+    with cluster(compute) as client, contextlib.ExitStack() as stack:
+        parts = _shards(client, compute)
+        workers = len(client.scheduler_info().get("workers", {}))
+        _say(quiet, "mine", f"on {compute.scheduler} ({workers} workers), gallery in {parts} shards")
+        folder = dup_tmp = None
+        if out is not None:
+            folder = stack.enter_context(atomic_path(out, force=force, directory=True))
+            dup_tmp = stack.enter_context(atomic_path(dup_out, force=force))
+        fut = client.submit(_mine_task, path, options, expect, cfg, None if folder is None else str(folder), parts,
+                            int(part_rows), return_triplets, key=f"tripletkit-mine-driver-{uuid.uuid4().hex}")
+        summary, attempt, notes = fut.result()
+        if folder is not None:
+            _settle(folder, attempt, dup_tmp)
+    for text, _ in notes:
+        warnings.warn(text, TripletkitWarning, stacklevel=3)
+    summary.seconds = time.perf_counter() - t0
+    summary.details.update({"shards": parts, "scheduler": compute.scheduler, "workers": workers})
+    if out is not None:
+        summary.out, summary.duplicates_out = str(out), str(dup_out)
+        summary.details["parts"] = sorted(p.name for p in out.glob("part-*.parquet"))
+    _say(quiet, "mine", f"{summary.n_triplets:,} triplets in {summary.seconds:.1f} s" + (f" -> {out}" if out else ""))
+    return summary
