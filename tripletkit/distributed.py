@@ -100,6 +100,8 @@ LOCAL_CLUSTER = "local-cluster"
 PART_ROWS = 1 << 20
 # Largest query payload sent with one search task (bytes); larger blocks are cut into chunks.
 _QUERY_BYTES = 4 << 20
+# Blocks of anchors searched ahead of the one the miner selects from.
+_AHEAD = 1
 
 
 def _say(quiet, verb, text):
@@ -440,13 +442,14 @@ def _shard_summary(rows):
 
 
 def _search_task(rows, queries, thresholds, k, memory_mb, keep_topk):
-    """Every shard row above each query's threshold (shard positions), and the shard's top-k."""
+    """Every shard row above each query's threshold (shard positions), the shard's top-k, seconds."""
+    t0 = time.perf_counter()
     q = queries.shape[0]
     widened = np.zeros(q, bool)
     if rows.shape[0] == 0:
         e = np.zeros(0, np.int64)
         top = (np.zeros((q, 0), np.float32), np.zeros((q, 0), np.int64)) if keep_topk else None
-        return e, e, np.zeros(0, np.float32), widened, top
+        return e, e, np.zeros(0, np.float32), widened, top, 0.0
     # aligned copies of what arrived over the network (faiss reads them with vector loads)
     rows, queries = (np.require(a, np.float32, ["C", "A"]) for a in (rows, queries))
     index = build_index(rows, "exact")
@@ -459,13 +462,16 @@ def _search_task(rows, queries, thresholds, k, memory_mb, keep_topk):
             widened[sel] = True
         if nb.topk is not None:
             top = nb.topk[:2]
-    return np.concatenate(qs), np.concatenate(rs), np.concatenate(ss), widened, top
+    return (np.concatenate(qs), np.concatenate(rs), np.concatenate(ss), widened, top,
+            time.perf_counter() - t0)
 
 
 class _ShardedIndex(SearchIndex):
     """An exact index whose rows are shards held by Dask workers; answers as one index would.
 
-    Only :meth:`within_pieces` (and what is built on it) is distributed; it is what the miner uses.
+    Only :meth:`within_pieces` (and what is built on it) is distributed; it is what the miner
+    uses. With :meth:`plan`, the searches of the next :data:`_AHEAD` blocks are already running
+    while the miner selects from the current one.
     """
 
     def __init__(self, client, shards, offsets, n, dim, folder=None):
@@ -474,22 +480,59 @@ class _ShardedIndex(SearchIndex):
         self.shards = shards
         self.offsets = offsets
         self.folder = folder
+        self._plan = None
+        self.stats = {"search_tasks": 0, "search_task_seconds": 0.0, "search_pairs": 0, "search_wait_seconds": 0.0}
+
+    def plan(self, queries, thresholds, block):
+        """The miner will ask for rows [0, block), [block, 2 block), ... of ``queries`` in order."""
+        self._plan = (queries, np.asarray(thresholds, dtype=np.float64), int(block))
+        self._next, self._ahead = 0, {}
+
+    def _planned(self, queries, thresholds):
+        """Start row of the planned block these queries are, or None."""
+        if self._plan is None:
+            return None
+        X, thr, b = self._plan
+        s = self._next
+        e = min(X.shape[0], s + b)
+        if (queries.shape[0] == e - s and np.array_equal(thresholds, thr[s:e])
+                and np.array_equal(queries, X[s:e])):
+            return s
+        return None
+
+    def _submit(self, queries, thresholds, k, memory_mb, keep_topk):
+        step = int(max(1, _QUERY_BYTES // (4 * self.dim)))
+        out = []
+        for s in range(0, queries.shape[0], step):
+            sel = np.arange(s, min(queries.shape[0], s + step))
+            q = np.ascontiguousarray(queries[sel])
+            out.append((sel, [self.client.submit(_search_task, shard, q, thresholds[sel], k, memory_mb, keep_topk,
+                                                 pure=False) for shard in self.shards]))
+        return out
 
     def within_pieces(self, queries, thresholds, k, *, memory_mb=1024, keep_topk=False):
         if self.folder is not None and not Path(self.folder).is_dir():
             # the client removed its temporary output: it was interrupted, so stop here
             raise TripletkitError(f"output folder {self.folder!r} was removed; the run was cancelled")
         thresholds = np.asarray(thresholds, dtype=np.float64)
-        q = queries.shape[0]
         k = int(min(max(1, k), self.n))
-        step = int(max(1, _QUERY_BYTES // (4 * self.dim)))
-        chunks = [np.arange(s, min(q, s + step)) for s in range(0, q, step)]
-        # every chunk's tasks are submitted first, so the workers search while the miner selects
-        pending = [[self.client.submit(_search_task, shard, np.ascontiguousarray(queries[sel]), thresholds[sel], k,
-                                       memory_mb, keep_topk, pure=False) for shard in self.shards]
-                   for sel in chunks]
-        for sel, futs in zip(chunks, pending):
+        s = self._planned(queries, thresholds)
+        if s is None:
+            pending = self._submit(queries, thresholds, k, memory_mb, keep_topk)
+        else:
+            X, thr, b = self._plan
+            for t in range(s, min(X.shape[0], s + (_AHEAD + 1) * b), b):
+                if t not in self._ahead:
+                    self._ahead[t] = self._submit(X[t:t + b], thr[t:t + b], k, memory_mb, keep_topk)
+            pending = self._ahead.pop(s)
+            self._next = s + b
+        for sel, futs in pending:
+            t0 = time.perf_counter()
             parts = self.client.gather(futs)
+            self.stats["search_wait_seconds"] += time.perf_counter() - t0
+            self.stats["search_tasks"] += len(parts)
+            self.stats["search_task_seconds"] += sum(p[5] for p in parts)
+            self.stats["search_pairs"] += int(sel.size) * self.n
             yield sel, self._merge(parts, sel.size, k, keep_topk)
 
     def _merge(self, parts, q, k, keep_topk):
@@ -595,13 +638,22 @@ def _mine_task(path, options, expect, config, folder, parts, part_rows, return_t
         # a fresh folder per attempt: a driver started again never writes beside an earlier one
         attempt = Path(folder) / f".attempt-{uuid.uuid4().hex}"
         attempt.mkdir()
+    built = []
+
+    def build(*args, **kwargs):
+        built.append(_build_sharded(client, _files(path), options, table, parts,
+                                    None if attempt is None else str(attempt), *args, **kwargs))
+        return built[-1]
+
+    t0 = time.perf_counter()
     with worker_client() as client, warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        build = functools.partial(_build_sharded, client, _files(path), options, table, parts,
-                                  None if attempt is None else str(attempt))
         summary = _mine_table(table, config, attempt, None if attempt is None else attempt / "duplicates.parquet",
                               quiet=True, return_triplets=return_triplets, build=build,
                               writer_class=functools.partial(_PartWriter, part_rows=part_rows))
+    summary.details["driver_seconds"] = time.perf_counter() - t0
+    if built:
+        summary.details.update(built[0].stats)
     notes = [(str(w.message), w.category.__name__) for w in caught if issubclass(w.category, TripletkitWarning)]
     return summary, None if attempt is None else str(attempt), notes
 

@@ -1009,6 +1009,9 @@ def _mine_table(table, cfg, tmp_out, tmp_dup, *, quiet=False, return_triplets=Fa
             stack.callback(_close_quietly, writer)
             n = table.n
             block = query_block_rows(n, min(cfg.neighbours, n), cfg.memory_mb, cfg.block_rows)
+            plan = getattr(index, "plan", None)
+            if plan is not None:  # an index that searches ahead of the blocks (tripletkit.distributed)
+                plan(miner.X, miner.thresholds, block)
             bar = tqdm(total=n, desc="mine", unit="row", file=sys.stderr, leave=False,
                        disable=quiet or not _is_tty(sys.stderr))
             with bar:
