@@ -338,11 +338,12 @@ def test_plots_off(tmp_path, table_path):
     assert not list((tmp_path / "rep").glob("*.png"))
 
 
-def test_scheduler_not_available_yet(table_path):
-    with pytest.raises(TripletkitError, match="not available yet"):
-        score(table_path, config=FAST, quiet=True, compute=ComputeConfig(scheduler="local-cluster"))
-    # a ComputeConfig without a scheduler means this process, as by default
-    assert score(table_path, config=FAST, quiet=True, compute=ComputeConfig())["verification"]["auc"] > 0.5
+def test_compute_without_scheduler_scores_in_this_process(table_path):
+    # A ComputeConfig without a scheduler means this process, as by default; the Dask path is
+    # tested in tests/test_distributed.py.
+    plain = score(table_path, config=FAST, quiet=True)
+    same = score(table_path, config=FAST, quiet=True, compute=ComputeConfig())
+    assert same["verification"]["auc"] == plain["verification"]["auc"] > 0.5
 
 
 def test_bad_config_type(table_path):
