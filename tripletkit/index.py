@@ -345,7 +345,8 @@ def scan_within(embeddings, queries, thresholds, *, memory_mb=1024):
     n, d = embeddings.shape
     q = queries.shape[0]
     slack = score_slack(d)
-    chunk = int(max(1, min(4096, memory_mb * 2 ** 20 // (8 * n))))
+    # half the budget for the (chunk, n) float32 scores and their mask (about 8 bytes a cell)
+    chunk = int(max(1, min(4096, memory_mb * 2 ** 20 // (16 * n))))
     parts_q, parts_r, parts_s = [], [], []
     for s in range(0, q, chunk):
         S = exact_scores(embeddings, queries[s:s + chunk])

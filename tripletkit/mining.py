@@ -688,7 +688,8 @@ class _Miner:
         n = self.n
         out = taken.copy()
         policy = self.cfg.select
-        chunk = int(max(1, min(4096, self.memory_mb * 2 ** 20 // (48 * n))))
+        # half the budget for the (pairs, n) scores, masks, keys and hash temporaries (~64 bytes a cell)
+        chunk = int(max(1, min(4096, self.memory_mb * 2 ** 20 // (128 * n))))
         cols = np.arange(n, dtype=np.int64)
         for c0 in range(0, P.size, chunk):
             Pc = P[c0:c0 + chunk]
