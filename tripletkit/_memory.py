@@ -1,0 +1,325 @@
+"""Memory guard: estimate what a run will hold and refuse it up front, with a suggestion.
+
+A run that needs more memory than the machine has is otherwise killed by the operating system
+halfway through (no message, or a ``MemoryError`` traceback). :func:`estimate_and_guard` compares
+an estimate with the memory still available and raises :class:`~tripletkit._errors.TripletkitError`
+with one line that says what to change (a smaller block, the approximate index, a subset).
+
+The estimators count the large arrays the code allocates (matrices, indexes, search blocks,
+score buffers); they leave out what is small or hard to predict (Python objects, BLAS work
+buffers, allocator slack), so the guard only lets a run plan to use :data:`USABLE_SHARE` of
+what is available.
+
+Available memory is, in this order: the ``TRIPLETKIT_MEMORY_LIMIT_MB`` environment variable
+(a cap set by the user, or a fake value in tests); otherwise the smaller of ``MemAvailable`` in
+``/proc/meminfo`` and the room left under a cgroup memory limit (containers, batch schedulers:
+their limit is invisible in ``/proc/meminfo``); otherwise ``os.sysconf`` (free physical pages).
+When none can be read the guard lets the run go ahead.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from ._errors import TripletkitError
+
+__all__ = ["ENV_LIMIT", "USABLE_SHARE", "available_bytes", "estimate_and_guard", "format_bytes",
+           "mining_bytes", "scoring_bytes"]
+
+#: Environment variable that sets the available memory in MB (overrides detection).
+ENV_LIMIT = "TRIPLETKIT_MEMORY_LIMIT_MB"
+#: Share of the available memory an estimated run may use; the rest is headroom for what the
+#: estimates leave out (common practice, no source).
+USABLE_SHARE = 0.8
+
+_MB = 2**20
+# Bytes of bookkeeping per neighbour of a search block: the rule of tripletkit.index.query_block_rows.
+_BYTES_PER_NEIGHBOUR = 64
+# Per-row state of the miner (ids, label codes, positions, counters: a few int64 arrays).
+_MINER_BYTES_PER_ROW = 48
+# One stored triplet when they are returned as arrays: 3 positions and 3 ids (int64), 3 float32,
+# an int8 regime and two labels.
+_BYTES_PER_TRIPLET = 80
+# Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
+# alive at once (measured with tracemalloc on small tables, where they dominate).
+_HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
+# Pairs per chunk of tripletkit.index.exact_cosine; each chunk gathers both sides' rows as float32
+# and copies them to float64 (12 bytes per value and side).
+_COSINE_CHUNK = 1 << 14
+# Verification keeps the highest impostor scores in at most this share of its memory budget
+# (tripletkit.metrics.verification._KEEP_SHARE).
+_KEEP_SHARE = 0.5
+# One genuine pair score kept for the exact second pass: float32 score, int64 pair id, group code.
+_BYTES_PER_GENUINE = 16
+
+
+# ---------------------------------------------------------------------------------------------
+# how much memory there is
+# ---------------------------------------------------------------------------------------------
+def _env_limit():
+    text = os.environ.get(ENV_LIMIT)
+    if text is None or not text.strip():
+        return None
+    try:
+        mb = float(text)
+    except ValueError:
+        mb = float("nan")
+    if not mb > 0 or mb == float("inf"):
+        raise TripletkitError(f"environment variable {ENV_LIMIT} must be a positive number of MB, got {text!r}; "
+                              "unset it to use the detected memory")
+    return int(mb * _MB)
+
+
+def _meminfo(path="/proc/meminfo"):
+    """``MemAvailable`` of ``/proc/meminfo`` in bytes, or None."""
+    try:
+        with open(path, encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    parts = line.split()
+                    return int(parts[1]) * (1024 if len(parts) < 3 or parts[2].lower() == "kb" else 1)
+    except (OSError, ValueError, IndexError):
+        return None
+    return None
+
+
+def _read_int(path):
+    try:
+        text = Path(path).read_text(encoding="ascii").strip()
+    except (OSError, UnicodeDecodeError):
+        return None
+    if text == "max":
+        return None
+    try:
+        return int(text)
+    except ValueError:
+        return None
+
+
+def _stat_value(path, key):
+    try:
+        for line in Path(path).read_text(encoding="ascii").splitlines():
+            name, _, value = line.partition(" ")
+            if name == key:
+                return int(value)
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    return None
+
+
+def _cgroup_room(root="/sys/fs/cgroup"):
+    """Bytes left under this process's cgroup memory limit, or None when there is no limit.
+
+    Page cache counts as used in the cgroup but is given back under pressure, so the inactive
+    file pages are added back to the room.
+    """
+    root = Path(root)
+    # cgroup v2 (unified hierarchy)
+    limit = _read_int(root / "memory.max")
+    if limit is not None:
+        used = _read_int(root / "memory.current") or 0
+        cache = _stat_value(root / "memory.stat", "inactive_file") or 0
+        return max(0, limit - used + cache)
+    # cgroup v1: no limit shows as a huge number
+    limit = _read_int(root / "memory" / "memory.limit_in_bytes")
+    if limit is not None and limit < 2**60:
+        used = _read_int(root / "memory" / "memory.usage_in_bytes") or 0
+        cache = _stat_value(root / "memory" / "memory.stat", "total_inactive_file") or 0
+        return max(0, limit - used + cache)
+    return None
+
+
+def _sysconf():
+    try:
+        return int(os.sysconf("SC_AVPHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (AttributeError, ValueError, OSError):
+        return None
+
+
+def available_bytes():
+    """Memory this process may still allocate, in bytes, or None when it cannot be told.
+
+    Returns
+    -------
+    int or None
+        ``TRIPLETKIT_MEMORY_LIMIT_MB`` (in bytes) when set; else the smaller of ``MemAvailable``
+        and the room under a cgroup limit; else free physical pages from ``os.sysconf``.
+    """
+    limit = _env_limit()
+    if limit is not None:
+        return limit
+    found = [v for v in (_meminfo(), _cgroup_room()) if v is not None]
+    if found:
+        return min(found)
+    return _sysconf()
+
+
+def format_bytes(n):
+    """``n`` bytes as a short text with binary units (``"1.5 GiB"``)."""
+    n = float(n)
+    for unit in ("bytes", "KiB", "MiB", "GiB", "TiB"):
+        if n < 1024 or unit == "TiB":
+            return f"{n:.0f} {unit}" if unit == "bytes" else f"{n:.1f} {unit}"
+        n /= 1024
+    raise AssertionError("unreachable")
+
+
+# ---------------------------------------------------------------------------------------------
+# the guard
+# ---------------------------------------------------------------------------------------------
+def estimate_and_guard(what, bytes_needed, *, suggestion, available=None):
+    """Refuse a run whose estimated memory exceeds what is available.
+
+    Parameters
+    ----------
+    what : str
+        The run, for the message (e.g. ``"mining 1,000,000 x 128 rows"``).
+    bytes_needed : int
+        Estimate from :func:`mining_bytes`, :func:`scoring_bytes` or the caller's own.
+    suggestion : str
+        What the user can change, e.g. ``"lower --block-rows or use --index ivf"``.
+    available : int, optional
+        Available bytes; by default :func:`available_bytes` (tests pass a fake value here or set
+        ``TRIPLETKIT_MEMORY_LIMIT_MB``).
+
+    Returns
+    -------
+    int or None
+        The available bytes the decision was made on (None: unknown, the run goes ahead).
+
+    Raises
+    ------
+    TripletkitError
+        When ``bytes_needed`` is more than :data:`USABLE_SHARE` of the available memory.
+
+    Examples
+    --------
+    >>> estimate_and_guard("scoring", 10 * 2**20, suggestion="use fewer rows", available=2**30)
+    1073741824
+    """
+    needed = int(bytes_needed)
+    if needed < 0:
+        raise ValueError(f"bytes_needed must be >= 0, got {bytes_needed!r}")
+    avail = available_bytes() if available is None else int(available)
+    if avail is None:
+        return None
+    if needed > USABLE_SHARE * avail:
+        raise TripletkitError(
+            f"{what} needs about {format_bytes(needed)} of memory but only {format_bytes(avail)} is available "
+            f"(a run may plan on {USABLE_SHARE:.0%} of it); {suggestion}"
+        )
+    return avail
+
+
+# ---------------------------------------------------------------------------------------------
+# estimators (the large arrays of each job; keep them in step with the code they describe)
+# ---------------------------------------------------------------------------------------------
+def _check_sizes(**values):
+    for name, value in values.items():
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise ValueError(f"{name} must be a whole number >= 0, got {value!r}")
+
+
+def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, ivf_nlist=0,
+                 memory_mb=1024, positives_per_anchor=4, triplets=0):
+    """Estimated peak bytes of :func:`tripletkit.mining.mine` on an ``n x d`` table.
+
+    Parameters
+    ----------
+    n, d : int
+        Rows and dimension of the embedding table.
+    block_rows : int
+        Anchors per search block (0: sized from ``memory_mb`` as the miner does).
+    k : int
+        Neighbours searched first per anchor (``neighbours``).
+    index : {"exact", "ivf", "hnsw", "auto"}
+        Index kind; ``auto`` resolves with ``exact_below`` as the miner does.
+    hnsw_m, ivf_nlist : int
+        Index knobs (``ivf_nlist`` 0: about 4 sqrt(n) lists).
+    memory_mb : int
+        The miner's block budget (``memory_mb``), used when ``block_rows`` is 0.
+    positives_per_anchor : int
+        Positives per anchor (sets how many pairs the exact float64 cosines are computed for).
+    triplets : int
+        Triplets returned as arrays (``return_triplets=True``); 0 when they are only written.
+
+    Returns
+    -------
+    int
+        The table (float32), the index's own copy of the vectors (+ HNSW links, or IVF ids and
+        centroids with the slack of lists that grow by doubling), the miner's per-row state, one
+        search block of top-k results with their bookkeeping, a quarter of ``memory_mb`` for the
+        widened (range) searches of a block, the working set of the exact float64 cosines (a
+        chunk of up to 16,384 pairs: both sides' rows as float32 and float64, so it grows with
+        ``d``), and the returned triplets. Checked against the
+        mining benchmark (bench/results/mining.log: 500,000 x 128 exact, about 800 MB above the
+        interpreter's own; IVF about 1.5 GB including the benchmark's data).
+    """
+    _check_sizes(n=n, d=d, block_rows=block_rows, k=k, hnsw_m=hnsw_m, ivf_nlist=ivf_nlist, memory_mb=memory_mb,
+                 positives_per_anchor=positives_per_anchor, triplets=triplets)
+    from .index import query_block_rows, resolve_kind
+
+    kind = resolve_kind(index, n, exact_below)
+    vectors = n * d * 4
+    if kind == "hnsw":
+        # level 0 keeps 2 * M int32 links per node; the upper levels add about 1/M of that again
+        index_bytes = vectors + int(n * 2 * hnsw_m * 4 * (1 + 1 / max(hnsw_m, 1)))
+    elif kind == "ivf":
+        nlist = ivf_nlist or max(1, int(4 * n**0.5))
+        # the inverted lists grow by doubling while rows are added: up to twice the vectors and ids
+        index_bytes = 2 * (vectors + n * 8) + nlist * d * 4
+    else:
+        index_bytes = vectors
+    kk = max(1, min(k, n))
+    block = query_block_rows(max(n, 1), kk, memory_mb, block_rows)
+    # results of the widened (range) searches of a block: sized like the top-k block, a quarter
+    # of the budget
+    widened = memory_mb * _MB // 4
+    cosines = 2 * min(_COSINE_CHUNK, n * positives_per_anchor) * d * 12
+    return int(vectors + index_bytes + n * _MINER_BYTES_PER_ROW + block * kk * _BYTES_PER_NEIGHBOUR
+               + widened + cosines + triplets * _BYTES_PER_TRIPLET)
+
+
+def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0):
+    """Estimated peak bytes of :func:`tripletkit.evaluate.score` on all pairs of an ``n x d`` table.
+
+    Parameters
+    ----------
+    n, d : int
+        Rows and dimension of the held-out table.
+    block_rows : int
+        Rows per scoring block (0: sized from ``memory_mb`` as the verification does).
+    memory_mb : int
+        The evaluation's memory budget (``memory_mb``).
+    genuine_pairs : int
+        Genuine pairs of the table (sum over identities of s (s - 1) / 2); their scores are kept
+        for the exact operating points.
+    identities : int
+        Identities (the k of the clustering's k-means).
+
+    Returns
+    -------
+    int
+        The table and the verification's sorted, scaled copy (float32), two block products and
+        a key buffer (12 bytes per score of a block), the score histograms, the kept genuine
+        scores and highest impostor scores, the retrieval index and its result block, the
+        k-means copy and centroids, and the (d, d) float64 matrices of the effective dimension
+        (health; three of them at once: scatter, covariance and its square).
+    """
+    _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
+                 identities=identities)
+    budget = memory_mb * _MB
+    nn = max(n, 1)
+    if block_rows:
+        b = min(block_rows, nn)
+    else:
+        b = min(max(1, budget // (13 * nn)), max(256, nn // 16), nn)
+    vectors = n * d * 4
+    verification = (vectors + 12 * b * n + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE
+                    + int(_KEEP_SHARE * budget))
+    retrieval = vectors + budget
+    clustering = vectors + identities * d * 4 + n * 8
+    health = 3 * d * d * 8
+    # the stages run one after another: the table stays, the largest stage sets the peak
+    return int(vectors + max(verification, retrieval, clustering, health))
