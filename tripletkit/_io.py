@@ -15,22 +15,75 @@ from pathlib import Path
 
 from ._errors import TripletkitError
 
-__all__ = ["atomic_path", "check_output", "jsonable"]
+__all__ = ["atomic_path", "check_output", "check_not_input", "jsonable"]
 
 
-def check_output(path, force=False):
-    """Check that ``path`` can be written: parent folder exists and is writable, no clobbering."""
+def _inside(inner, outer):
+    """Whether resolved path ``inner`` is ``outer`` or lies below it."""
+    return inner == outer or outer in inner.parents
+
+
+def check_output(path, force=False, directory=None):
+    """Check that ``path`` can be written: parent folder exists and is writable, no clobbering.
+
+    Parameters
+    ----------
+    path : str or Path
+    force : bool, default False
+        Allow replacing an existing output of the same kind.
+    directory : bool or None, default None
+        True when the output is a folder, False when it is a file; an existing output of the
+        other kind is refused even with ``force`` (replacing a folder by a file would delete a
+        whole folder that was probably not ours). None skips this check.
+    """
     path = Path(path)
     parent = path.parent if str(path.parent) else Path(".")
     if not parent.exists():
         raise TripletkitError(f"output folder {str(parent)!r} does not exist; create it first")
     if not parent.is_dir():
-        raise TripletkitError(f"output parent {str(parent)!r} is not a folder")
+        raise TripletkitError(f"output parent {str(parent)!r} is not a folder; choose an output inside a folder")
     if not os.access(parent, os.W_OK | os.X_OK):
         raise TripletkitError(f"output folder {str(parent)!r} is not writable")
-    if path.exists() and not force:
-        raise TripletkitError(f"output {str(path)!r} already exists; pass --force (force=True) to replace it")
+    if path.exists() or path.is_symlink():
+        if directory is True and not path.is_dir():
+            raise TripletkitError(f"output {str(path)!r} is an existing file but a folder is written here; "
+                                  "choose another --out")
+        if directory is False and path.is_dir():
+            raise TripletkitError(f"output {str(path)!r} is an existing folder but a file is written here; "
+                                  "give a file path (e.g. {}/out.parquet)".format(str(path)))
+        if path.is_dir() and _inside(Path.cwd().resolve(), path.resolve()):
+            # Replacing it would delete the folder we are working in (``--out .`` with --force).
+            raise TripletkitError(f"output folder {str(path)!r} contains the current folder; refusing to replace "
+                                  "it, choose a new folder for --out")
+        if not force:
+            raise TripletkitError(f"output {str(path)!r} already exists; pass --force (force=True) to replace it")
     return path
+
+
+def check_not_input(out, inputs, option="--out"):
+    """Refuse an output that is one of ``inputs`` or a folder holding one of them.
+
+    Replacing such an output (with ``force``) would destroy the input it is computed from, and
+    inputs are never modified.
+
+    Parameters
+    ----------
+    out : str or Path
+        The output path.
+    inputs : iterable of str or Path or None
+        Input files or folders (None entries are ignored).
+    option : str
+        Name of the output option, for the message.
+    """
+    target = Path(out).resolve()
+    for item in inputs:
+        if item is None:
+            continue
+        src = Path(item).resolve()
+        if _inside(src, target):
+            what = "is" if src == target else "contains"
+            raise TripletkitError(f"{option} {str(out)!r} {what} the input {str(item)!r}; writing there would "
+                                  f"destroy the input, choose another {option}")
 
 
 def _umask():
@@ -55,7 +108,7 @@ def atomic_path(path, force=False, directory=False):
     On any exception (including KeyboardInterrupt) the temporary output is removed and the
     previous output, if any, is left untouched.
     """
-    path = check_output(path, force=force)
+    path = check_output(path, force=force, directory=bool(directory))
     parent = path.parent if str(path.parent) else Path(".")
     prefix = f".{path.name}.tmp-"
     if directory:

@@ -8,17 +8,21 @@ cannot drift apart. A command-line option overrides the config file.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
 import json
 import math
+import os
 import signal
 import sys
 import typing
+import warnings
 
 from . import __version__
 from ._errors import TripletkitError
-from ._io import jsonable
+from ._io import check_not_input, jsonable
 from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
+from .table import require_pairs
 
 __all__ = ["main", "build_parser"]
 
@@ -193,21 +197,37 @@ def _run(args):
         from .mining import mine
         from .table import EmbeddingTable
 
+        from .mining import duplicates_path
+
         cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)
         kwargs = {}
         if compute.scheduler is not None:
             kwargs["compute"] = compute
+        check_not_input(args.out, [args.table])
+        if compute.scheduler is None:
+            check_not_input(duplicates_path(args.out), [args.table])
         table = EmbeddingTable.read(args.table, **_table_kwargs(args))
-        return mine(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet, **kwargs)
+        require_pairs(table, "mining")
+        return mine(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
+                    table_options=_table_kwargs(args), **kwargs)
     if args.command == "score":
         from .evaluate import score
 
+        from .table import EmbeddingTable
+
         cfg = _load_section(args, "evaluation", EvaluationConfig)
         compute = _compute(args)
-        kwargs = {"compute": compute} if compute.scheduler is not None else {}
-        return score(args.table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
-                     table_options=_table_kwargs(args), **kwargs)
+        check_not_input(args.out, [args.table, cfg.pairs, args.config])
+        if compute.scheduler is not None:
+            return score(args.table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
+                         table_options=_table_kwargs(args), compute=compute)
+        table = EmbeddingTable.read(args.table, **_table_kwargs(args))
+        if cfg.pairs is None:
+            # all pairs: with no genuine or no impostor pair nothing could be computed but nulls
+            require_pairs(table, "scoring")
+        return score(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
+                     table_options=_table_kwargs(args))
     if args.command == "sweep":
         from .sweep import sweep
 
@@ -241,31 +261,89 @@ def _on_sigterm(signum, frame):
     raise SystemExit(128 + signum)
 
 
+def _one_line(text):
+    lines = str(text).strip().splitlines()
+    return lines[0] if lines else ""
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """Warnings as one line each (``warning: ...``) instead of Python's two-line format."""
+    from ._errors import TripletkitWarning
+
+    text = _one_line(message)
+    if not issubclass(category, TripletkitWarning):
+        text = f"{category.__name__}: {text}"
+    try:
+        print(f"warning: {text}", file=sys.stderr if file is None else file, flush=True)
+    except (OSError, ValueError):
+        pass
+
+
+def _memory_message(command):
+    hint = {"mine": "lower --memory-mb or --block-rows, use --index ivf or hnsw, or mine a smaller table",
+            "score": "lower --memory-mb or --block-rows, or score fewer rows or a lower embedding dimension",
+            "sweep": "use fewer held-out rows or a smaller [head] dim"}.get(command, "use a smaller input")
+    return f"out of memory while running {command}; {hint}"
+
+
 def main(argv=None):
-    """Entry point of the ``tripletkit`` command; returns the exit code."""
+    """Entry point of the ``tripletkit`` command; returns the exit code.
+
+    Exit codes: 0 done; 2 bad input (one line ``error: ...`` on stderr, also for running out of
+    memory or an operating-system error such as a full disk); 130 interrupted (Ctrl-C), 143
+    terminated (SIGTERM); 1 an internal error (a bug: the line says so, ``--debug`` shows the
+    traceback). Warnings print as one line each, ``warning: ...``.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     previous = signal.signal(signal.SIGTERM, _on_sigterm)
     try:
-        result = jsonable(_run(args))
+        with warnings.catch_warnings():
+            if not args.debug:
+                warnings.showwarning = _show_warning
+            result = jsonable(_run(args))
     except TripletkitError as exc:
         if args.debug:
             raise
-        print(f"error: {str(exc).splitlines()[0]}", file=sys.stderr)
+        print(f"error: {_one_line(exc)}", file=sys.stderr)
+        return 2
+    except MemoryError:
+        if args.debug:
+            raise
+        print(f"error: {_memory_message(args.command)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         if args.debug:
             raise
         print("interrupted: no output was written", file=sys.stderr)
         return 130
+    except OSError as exc:
+        if args.debug:
+            raise
+        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+        print(f"error: {exc.strerror or _one_line(exc) or type(exc).__name__}{where}; check the path, "
+              "permissions and free space", file=sys.stderr)
+        return 2
+    except Exception as exc:  # a bug: say so in one line, the traceback is one --debug away
+        if args.debug:
+            raise
+        print(f"error: internal error ({type(exc).__name__}: {_one_line(exc)}); this is a bug in tripletkit, "
+              "rerun with --debug for the traceback and report it", file=sys.stderr)
+        return 1
     finally:
         signal.signal(signal.SIGTERM, previous)
-    if getattr(args, "json", False):
-        print(json.dumps(result, indent=2, sort_keys=False))
-    elif isinstance(result, dict):
-        print("\n".join(_text(result)))
-    elif result is not None:
-        print(result)
+    try:
+        if getattr(args, "json", False):
+            print(json.dumps(result, indent=2, sort_keys=False))
+        elif isinstance(result, dict):
+            print("\n".join(_text(result)))
+        elif result is not None:
+            print(result)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        # the reader (e.g. `| head`) went away; not an error of ours
+        with contextlib.suppress(OSError):
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
     return 0
 
 

@@ -1,8 +1,8 @@
 """TOML configs -> frozen dataclasses.
 
 Every section is a frozen dataclass whose fields carry their own checks (``choices``, ``low``,
-``high``, ``open_low``) in ``field(metadata=...)``. Unknown sections, unknown keys, wrong types
-and out-of-range values are errors naming the file, the section and the key. Command-line
+``high``, ``open_low``, ``open_high``) in ``field(metadata=...)``. Unknown sections, unknown
+keys, wrong types and out-of-range values are errors naming the file, the section and the key. Command-line
 options are generated from the same fields (see ``cli.py``), so a key and its option cannot drift
 apart. No code runs from a config: it is parsed with :mod:`tomllib` only.
 """
@@ -74,7 +74,8 @@ class EvaluationConfig:
     fmr: tuple[float, ...] = _opt((0.0001, 0.001, 0.01), "false match rates at which FNMR is reported",
                                   low=0.0, high=1.0, open_low=True)
     bootstrap: int = _opt(200, "identity-level bootstrap replicates for intervals (0: none)", low=0)
-    confidence: float = _opt(0.95, "confidence level of the intervals", low=0.0, high=1.0, open_low=True)
+    confidence: float = _opt(0.95, "confidence level of the intervals", low=0.0, high=1.0, open_low=True,
+                             open_high=True)
     recall_k: tuple[int, ...] = _opt((1, 5, 10), "K values of Recall@K", low=1)
     pairs: str | None = _opt(None, "Parquet pair list (left, right[, same]) instead of all pairs")
     clustering: bool = _opt(True, "run k-means clustering metrics")
@@ -105,7 +106,8 @@ class SweepConfig:
     primary: str = _opt("fnmr@0.001", "metric that ranks the runs (lower is better): eer or fnmr@<fmr>, "
                         "the FMR one of [evaluation] fmr")
     bootstrap: int = _opt(200, "identity resamples for the paired comparison", low=1)
-    confidence: float = _opt(0.95, "confidence level of the paired interval", low=0.0, high=1.0, open_low=True)
+    confidence: float = _opt(0.95, "confidence level of the paired interval", low=0.0, high=1.0, open_low=True,
+                             open_high=True)
     seed: int = _opt(0, "seed of the paired resampling", low=0)
     runs: tuple[SweepRun, ...] = _opt((), "checkpoints mode: one [[sweep.runs]] per margin")
 
@@ -200,8 +202,9 @@ def _check_range(value, meta, where):
     if low is not None and (value <= low if meta.get("open_low") else value < low):
         rel = ">" if meta.get("open_low") else ">="
         raise TripletkitError(f"{where} must be {rel} {low}, got {value!r}")
-    if high is not None and value > high:
-        raise TripletkitError(f"{where} must be <= {high}, got {value!r}")
+    if high is not None and (value >= high if meta.get("open_high") else value > high):
+        rel = "<" if meta.get("open_high") else "<="
+        raise TripletkitError(f"{where} must be {rel} {high}, got {value!r}")
     choices = meta.get("choices") or meta.get("each")
     if choices is not None and value not in choices:
         raise TripletkitError(f"{where} must be one of {', '.join(choices)}; got {value!r}")

@@ -45,7 +45,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import atomic_path, check_output, jsonable
+from ._io import atomic_path, check_not_input, check_output, jsonable
 
 __all__ = [
     "DEFAULT_SEED",
@@ -496,6 +496,8 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
     out = Path(out)
     progress = not quiet
     summary = {}
+    # --force replaces the folder: never one that holds the demo tables or the package itself
+    check_not_input(out, [_bundled_dir(), Path(__file__).resolve().parent])
     with atomic_path(out, force=force, directory=True) as tmp:
         data = demo_paths(cache_dir=tmp / "data")
         _stage(progress, "checking the training dump and the held-out set")

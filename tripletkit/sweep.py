@@ -70,11 +70,11 @@ from pathlib import Path
 import numpy as np
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_output, jsonable
+from ._io import atomic_path, check_not_input, check_output, jsonable
 from .config import load_config
 from .loss import REGIMES
 from .report import CAUTION
-from .table import EmbeddingTable
+from .table import EmbeddingTable, require_pairs
 
 __all__ = ["sweep", "paired_comparison", "parse_primary"]
 
@@ -638,12 +638,25 @@ def sweep(config_path, out, *, force=False, quiet=False):
     where = str(config_path)
     plan = _plan(cfg, where)
     out = Path(out)
-    check_output(out, force=force)
+    inputs = [config_path, cfg.data.train, cfg.data.heldout]
+    inputs += [p for run in plan.runs for p in (run.heldout_path, run.train_path)]
+    check_not_input(out, inputs)
+    check_output(out, force=force, directory=True)
+    # a comparison needs genuine and impostor pairs; without them every run would only hold nulls
+    hint = f"is the label column of the table named in {where} the identity column?"
+    if plan.mode == "fit-head":
+        require_pairs(plan.heldout, "a sweep on the held-out set", hint=hint)
+        require_pairs(plan.train, "fitting a head on the training set", hint=hint)
+    else:
+        require_pairs(plan.runs[0].heldout, "a sweep on the held-out set", hint=hint)
+        for run in plan.runs:
+            if run.train is not None:
+                require_pairs(run.train, f"mining statistics (margin {run.margin:g})", hint=hint)
     notes = []
     if plan.mode == "fit-head":
         shared = np.intersect1d(plan.train.label_values.astype(str), plan.heldout.label_values.astype(str))
         if shared.size:
-            note = (f"{shared.size} held-out identities also occur in [data] train (first: {shared[0]!r}); "
+            note = (f"{shared.size} held-out identities also occur in [data] train (first: {str(shared[0])!r}); "
                     "held-out error rates are optimistic for them")
             warnings.warn(note, TripletkitWarning, stacklevel=2)
             notes.append(note)
@@ -874,7 +887,8 @@ def _plots(tmp, plan, rows, reports, comparison):
     ax_f.set_ylim(bottom=0)
     ax_f.set_ylabel("error rate (%)")
     ax_f.set_title("each run's report (FNMR with its report's intervals)", fontsize=9)
-    ax_f.legend(frameon=False, fontsize=8)
+    if ax_f.get_legend_handles_labels()[0]:  # nothing labelled when every value is null
+        ax_f.legend(frameon=False, fontsize=8)
     for ax in (ax_p, ax_f):
         _margin_axis(ax, margins)
     fig.tight_layout()

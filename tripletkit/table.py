@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 from ._errors import TripletkitError
 from ._io import atomic_path
 
-__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "check"]
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "check", "require_pairs"]
 
 #: Norms within this distance of 1 count as "already unit length".
 UNIT_NORM_TOLERANCE = 1e-3
@@ -108,7 +108,7 @@ class EmbeddingTable:
                     f"name it with --{role}-column"
                 )
         if table.num_rows == 0:
-            raise TripletkitError(f"table{where} has no rows")
+            raise TripletkitError(f"table{where} has no rows; is it the right file?")
         ids = _key_column(table.column(id_column), id_column, "id", where)
         if len(pc.unique(table.column(id_column))) != table.num_rows:
             dup = _first_duplicate(ids)
@@ -117,7 +117,7 @@ class EmbeddingTable:
         emb = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
         groups = None
         if group_column and group_column in names:
-            groups = table.column(group_column).to_numpy(zero_copy_only=False)
+            groups = _group_column(table.column(group_column), group_column, where)
         others = [c for c in names if c not in (id_column, label_column, embedding_column, group_column)]
         metadata = table.select(others) if others else None
         return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where)
@@ -159,6 +159,8 @@ class EmbeddingTable:
             groups = np.asarray(groups)
             if groups.shape != ids.shape:
                 raise TripletkitError(f"groups must have one entry per row ({ids.shape[0]}), got shape {groups.shape}")
+            if groups.dtype == object and any(v is None for v in groups):
+                raise TripletkitError("groups contain null values; every row needs a group (e.g. 'unknown')")
         return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "")
 
     @classmethod
@@ -291,7 +293,13 @@ def _read_arrow(path):
                 raise TripletkitError(f"folder {str(p)!r} holds no .parquet files")
             schemas = {}
             for f in files:
-                schemas.setdefault(pq.read_schema(f).remove_metadata(), f)
+                try:
+                    schema = pq.read_schema(f)
+                except (pa.ArrowException, OSError) as exc:
+                    msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+                    raise TripletkitError(f"cannot read part {f!r} of folder {str(p)!r} as Parquet ({msg}); "
+                                          "is the file complete?") from None
+                schemas.setdefault(schema.remove_metadata(), f)
             if len(schemas) > 1:
                 a, b = list(schemas.values())[:2]
                 raise TripletkitError(
@@ -323,10 +331,44 @@ def _key_column(col, name, role, where):
             f"every row needs a {role}"
         )
     if pa.types.is_integer(t):
-        return col.cast(pa.int64()).to_numpy()
+        try:
+            return col.cast(pa.int64()).to_numpy()
+        except pa.ArrowInvalid:
+            # uint64 values above 2**63 - 1 do not fit the int64 the contract asks for
+            raise TripletkitError(
+                f"{role} column {name!r}{where} has {t} values above {np.iinfo(np.int64).max}; store the {role}s "
+                "as int64 or string"
+            ) from None
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         return col.to_numpy(zero_copy_only=False).astype(object)
     raise TripletkitError(f"{role} column {name!r}{where} has type {t}; expected int64 or string")
+
+
+def _group_column(col, name, where):
+    """The optional subgroup column as a numpy array: integers, strings, booleans or numbers, no nulls."""
+    t = col.type
+    if pa.types.is_dictionary(t):
+        col = col.cast(t.value_type)
+        t = col.type
+    if not (pa.types.is_integer(t) or pa.types.is_string(t) or pa.types.is_large_string(t)
+            or pa.types.is_boolean(t) or pa.types.is_floating(t)):
+        raise TripletkitError(
+            f"group column {name!r}{where} has type {t}; expected strings or integers (name another column "
+            "with --group-column)"
+        )
+    if col.null_count:
+        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+        raise TripletkitError(
+            f"group column {name!r}{where} has {col.null_count} null values (first at row {first}); fill them "
+            "(e.g. with 'unknown') or name another column with --group-column"
+        )
+    values = col.to_numpy(zero_copy_only=False)
+    if pa.types.is_floating(t) and np.isnan(values).any():
+        first = int(np.flatnonzero(np.isnan(values))[0])
+        raise TripletkitError(
+            f"group column {name!r}{where} has NaN values (first at row {first}); every row needs a group"
+        )
+    return values
 
 
 def _first_duplicate(ids):
@@ -348,7 +390,8 @@ def _embedding_matrix(col, name, ids, where):
     if arr.null_count:
         mask = arr.is_null().to_numpy(zero_copy_only=False)
         raise TripletkitError(
-            f"embedding column {name!r}{where} has {int(mask.sum())} null rows (first ids: {_first(ids, mask)})"
+            f"embedding column {name!r}{where} has {int(mask.sum())} null rows (first ids: {_first(ids, mask)}); "
+            "every row needs a vector, remove those rows"
         )
     n = len(arr)
     if pa.types.is_fixed_size_list(t):
@@ -364,7 +407,7 @@ def _embedding_matrix(col, name, ids, where):
             )
         d = lo
     if d == 0:
-        raise TripletkitError(f"embedding column {name!r}{where} has rows of length 0")
+        raise TripletkitError(f"embedding column {name!r}{where} has rows of length 0; every row needs at least one value")
     values = arr.flatten()
     if values.null_count:
         raise TripletkitError(
@@ -393,6 +436,39 @@ def as_table(source, **options):
     raise TripletkitError(
         f"expected a table path, an EmbeddingTable or an (ids, labels, embeddings) tuple, got {type(source).__name__}"
     )
+
+
+def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
+    """Raise when a table has no genuine pairs or no impostor pairs at all.
+
+    The Python functions treat such tables as legal but degenerate (a warning and nulls), so a
+    training loop can carry on; the commands that would only write nulls call this first and
+    stop with one line instead (see ``docs/limits.md``).
+
+    Parameters
+    ----------
+    table : EmbeddingTable
+    what : str
+        What needs the pairs, for the message (e.g. ``"mining"``).
+    genuine : bool, default True
+        Require an identity with at least two rows (an anchor and its positive).
+    impostor : bool, default True
+        Require at least two identities (negatives).
+    hint : str
+        What to check, appended to the message in parentheses.
+    """
+    where = f" {table.source!r}" if table.source else ""
+    if impostor and table.n_identities < 2:
+        only = _py(table.label_values[0])
+        raise TripletkitError(
+            f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
+            f"at least 2 identities ({hint})"
+        )
+    if genuine and not (table.identity_sizes() >= 2).any():
+        raise TripletkitError(
+            f"every identity of table{where} has one row, so there are no genuine pairs; {what} needs identities "
+            f"with at least 2 rows ({hint})"
+        )
 
 
 # -- writing ----------------------------------------------------------------------------------
