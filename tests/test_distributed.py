@@ -223,6 +223,42 @@ def test_worker_lost_mid_run_gives_the_same_triplets(local, compute, tmp_path):
         assert record["worker"] not in client.scheduler_info()["workers"]
 
 
+def test_driver_stops_when_its_client_dies(local, tmp_path):
+    addr, out = local.scheduler_address, tmp_path / "t.parquet"
+    code = ("from tripletkit.config import ComputeConfig\nfrom tripletkit.mining import mine\n"
+            f"mine({str(TRAIN)!r}, {str(out)!r}, quiet=True, block_rows=100, compute=ComputeConfig(scheduler={addr!r}))\n")
+    proc = subprocess.Popen([sys.executable, "-c", code])
+
+    def drivers(client):
+        return [k for keys in client.processing().values() for k in keys if str(k).startswith("tripletkit-mine-driver-")]
+
+    with distributed.Client(addr) as client:
+        deadline = time.time() + 60
+        while not drivers(client) and time.time() < deadline:
+            time.sleep(0.02)
+        assert drivers(client), "the driver never started"
+        time.sleep(0.5)
+        proc.kill()  # the client dies without cleaning up
+        proc.wait()
+
+        def still_running():
+            # the scheduler forgets the driver at once; its worker holds it (cancelled) until it returns
+            found = client.run(lambda dask_worker: [str(k) for k in dask_worker.state.tasks
+                                                    if str(k).startswith("tripletkit-mine-driver-")])
+            return any(found.values())
+
+        deadline = time.time() + 60
+        while still_running() and time.time() < deadline:
+            time.sleep(0.1)
+        assert not still_running()
+    # a hard kill leaves the dot-prefixed temporary folder, never the output
+    assert not out.exists()
+    (temp,) = tmp_path.glob(".t.parquet.tmp-*")
+    (attempt,) = temp.glob(".attempt-*")
+    # the driver saw that its client was gone and stopped before writing its last file
+    assert not (attempt / "duplicates.parquet").exists()
+
+
 def test_client_error_leaves_no_output(compute, tmp_path, monkeypatch):
     import tripletkit.distributed as D
 
@@ -269,6 +305,12 @@ def test_errors_name_the_problem(compute, tmp_path, rng):
     (tmp_path / "t.parquet").mkdir()
     with pytest.raises(TripletkitError, match="already exists"):
         mine(TRAIN, tmp_path / "t.parquet", quiet=True, compute=compute)
+    # with --force, a folder output that holds the input would delete it
+    (tmp_path / "data").mkdir()
+    (tmp_path / "data" / "train.parquet").write_bytes(TRAIN.read_bytes())
+    with pytest.raises(TripletkitError, match="would overwrite the input table"):
+        mine(tmp_path / "data" / "train.parquet", tmp_path / "data", force=True, quiet=True, compute=compute)
+    assert (tmp_path / "data" / "train.parquet").is_file()
     # a bad table fails on the cluster with the single-process message
     bad = to_arrow(np.arange(6), np.repeat([1, 2], 3), np.vstack([np.zeros((1, 3)), np.ones((5, 3))]))
     pq.write_table(bad, tmp_path / "bad.parquet")

@@ -112,6 +112,27 @@ def _say(quiet, verb, text):
 # ---------------------------------------------------------------------------------------------
 # the cluster
 # ---------------------------------------------------------------------------------------------
+def _watch_driver():
+    """A function telling whether the scheduler let go of the task running now (its client died
+    or cancelled it): Dask cannot stop a running task, so the drivers ask at every block."""
+    try:
+        from distributed import get_worker
+
+        worker = get_worker()
+        key = worker.get_current_task()
+    except Exception:  # not inside a task: nothing to watch
+        return lambda: False
+
+    def cancelled():
+        try:
+            ts = worker.state.tasks.get(key)
+        except Exception:  # another distributed version without this state: cannot tell
+            return False
+        return ts is None or ts.state in ("cancelled", "released", "forgotten")
+
+    return cancelled
+
+
 def _distributed():
     try:
         import distributed
@@ -166,9 +187,7 @@ def _shards(client, compute):
 
 def _thread_limits():
     """BLAS and OpenMP thread counts of this process, by library (float32 products depend on them)."""
-    from threadpoolctl import threadpool_info
-
-    from . import index  # noqa: F401  (loads faiss, its BLAS and OpenMP, so that they are listed)
+    from threadpoolctl import threadpool_info  # faiss, its BLAS and OpenMP are loaded by .index above
 
     return {info["prefix"]: int(info["num_threads"]) for info in threadpool_info()}
 
@@ -303,13 +322,16 @@ def _tree_sum(client, futures):
 class _BlockRunner:
     """Runs the passes of ``verify_all_pairs`` as Dask tasks (see ``verification.block_runner``)."""
 
-    def __init__(self, client, parts, limits):
+    def __init__(self, client, parts, limits, cancelled=None):
         self.client = client
         self.parts = parts
         self.limits = limits
         self.data = None
+        self.cancelled = cancelled or (lambda: False)
 
     def _share(self, blocks):
+        if self.cancelled():
+            raise TripletkitError("the client of this run is gone or cancelled it; the run was stopped")
         if self.data is None:
             xs, codes = self.client.scatter([blocks.xs, blocks.codes], broadcast=True, hash=False)
             gcodes = None
@@ -354,8 +376,9 @@ def _score_task(path, options, expect, config, limits, parts):
     from .evaluate import score
     from .metrics.verification import block_runner
 
+    cancelled = _watch_driver()
     table = _read_table(path, options, expect)
-    with _limits(limits), worker_client() as client, block_runner(_BlockRunner(client, parts, limits)):
+    with _limits(limits), worker_client() as client, block_runner(_BlockRunner(client, parts, limits, cancelled)):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # the report lists them; the client issues them again
             return score(table, config=config, quiet=True)
@@ -442,8 +465,9 @@ def _shard_summary(rows):
 
 
 def _search_task(rows, queries, thresholds, k, memory_mb, keep_topk):
-    """Every shard row above each query's threshold (shard positions), the shard's top-k, seconds."""
-    t0 = time.perf_counter()
+    """Every shard row above each query's threshold (shard positions), the shard's top-k, and the
+    CPU seconds of this thread (faiss and BLAS run single-threaded in a worker)."""
+    t0 = time.thread_time()
     q = queries.shape[0]
     widened = np.zeros(q, bool)
     if rows.shape[0] == 0:
@@ -463,7 +487,7 @@ def _search_task(rows, queries, thresholds, k, memory_mb, keep_topk):
         if nb.topk is not None:
             top = nb.topk[:2]
     return (np.concatenate(qs), np.concatenate(rs), np.concatenate(ss), widened, top,
-            time.perf_counter() - t0)
+            time.thread_time() - t0)
 
 
 class _ShardedIndex(SearchIndex):
@@ -474,14 +498,15 @@ class _ShardedIndex(SearchIndex):
     while the miner selects from the current one.
     """
 
-    def __init__(self, client, shards, offsets, n, dim, folder=None):
+    def __init__(self, client, shards, offsets, n, dim, folder=None, cancelled=None):
         super().__init__(None, "exact", n, dim, {})
         self.client = client
         self.shards = shards
         self.offsets = offsets
         self.folder = folder
+        self.cancelled = cancelled or (lambda: False)
         self._plan = None
-        self.stats = {"search_tasks": 0, "search_task_seconds": 0.0, "search_pairs": 0, "search_wait_seconds": 0.0}
+        self.stats = {"search_tasks": 0, "search_cpu_seconds": 0.0, "search_pairs": 0, "search_wait_seconds": 0.0}
 
     def plan(self, queries, thresholds, block):
         """The miner will ask for rows [0, block), [block, 2 block), ... of ``queries`` in order."""
@@ -514,6 +539,8 @@ class _ShardedIndex(SearchIndex):
         if self.folder is not None and not Path(self.folder).is_dir():
             # the client removed its temporary output: it was interrupted, so stop here
             raise TripletkitError(f"output folder {self.folder!r} was removed; the run was cancelled")
+        if self.cancelled():
+            raise TripletkitError("the client of this run is gone or cancelled it; the run was stopped")
         thresholds = np.asarray(thresholds, dtype=np.float64)
         k = int(min(max(1, k), self.n))
         s = self._planned(queries, thresholds)
@@ -531,7 +558,7 @@ class _ShardedIndex(SearchIndex):
             parts = self.client.gather(futs)
             self.stats["search_wait_seconds"] += time.perf_counter() - t0
             self.stats["search_tasks"] += len(parts)
-            self.stats["search_task_seconds"] += sum(p[5] for p in parts)
+            self.stats["search_cpu_seconds"] += sum(p[5] for p in parts)
             self.stats["search_pairs"] += int(sel.size) * self.n
             yield sel, self._merge(parts, sel.size, k, keep_topk)
 
@@ -552,7 +579,7 @@ class _ShardedIndex(SearchIndex):
         return _csr(qs[order], rs[order], ss[order], q, widened, topk)
 
 
-def _build_sharded(client, files, options, table, parts, folder, embeddings, kind, **_):
+def _build_sharded(client, files, options, table, parts, folder, cancelled, embeddings, kind, **_):
     """The ``build`` hook of the miner: shards loaded by the workers, checked against the driver's rows."""
     if kind != "exact":
         raise TripletkitError(
@@ -575,7 +602,7 @@ def _build_sharded(client, files, options, table, parts, folder, embeddings, kin
         if digest != _digest(embeddings[off:off + m]):
             raise TripletkitError(f"rows {off}..{off + m - 1} read by a worker differ from the driver's; the dataset "
                                   "changed during the run or differs between machines")
-    return _ShardedIndex(client, shards, offsets, table.n, table.dim, folder)
+    return _ShardedIndex(client, shards, offsets, table.n, table.dim, folder, cancelled)
 
 
 class _PartWriter:
@@ -632,6 +659,8 @@ def _mine_task(path, options, expect, config, folder, parts, part_rows, return_t
 
     from .mining import _mine_table
 
+    t0, c0 = time.perf_counter(), time.thread_time()
+    cancelled = _watch_driver()
     table = _read_table(path, options, expect)
     attempt = None
     if folder is not None:
@@ -642,16 +671,16 @@ def _mine_task(path, options, expect, config, folder, parts, part_rows, return_t
 
     def build(*args, **kwargs):
         built.append(_build_sharded(client, _files(path), options, table, parts,
-                                    None if attempt is None else str(attempt), *args, **kwargs))
+                                    None if attempt is None else str(attempt), cancelled, *args, **kwargs))
         return built[-1]
 
-    t0 = time.perf_counter()
     with worker_client() as client, warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         summary = _mine_table(table, config, attempt, None if attempt is None else attempt / "duplicates.parquet",
                               quiet=True, return_triplets=return_triplets, build=build,
                               writer_class=functools.partial(_PartWriter, part_rows=part_rows))
     summary.details["driver_seconds"] = time.perf_counter() - t0
+    summary.details["driver_cpu_seconds"] = time.thread_time() - c0
     if built:
         summary.details.update(built[0].stats)
     notes = [(str(w.message), w.category.__name__) for w in caught if issubclass(w.category, TripletkitWarning)]
@@ -702,6 +731,8 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
     cfg = _config(config, {})
     if not isinstance(cfg, MiningConfig):
         raise TripletkitError(f"config must be a MiningConfig (or None), got {type(cfg).__name__}")
+    if int(part_rows) < 1:
+        raise TripletkitError(f"part_rows must be >= 1, got {part_rows!r}")
     path, shown, options, expect = _source(source, table_options)
     dup_out = None
     if out is not None:
@@ -709,6 +740,9 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
         dup_out = duplicates_path(out)
         check_output(out, force=force)
         check_output(dup_out, force=force)
+        src, target = Path(path), out.resolve()
+        if src == dup_out.resolve() or src == target or target in src.parents:
+            raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     with cluster(compute) as client, contextlib.ExitStack() as stack:
         parts = _shards(client, compute)
         workers = len(client.scheduler_info().get("workers", {}))

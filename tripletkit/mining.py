@@ -957,6 +957,11 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     """
     t0 = time.perf_counter()
     cfg = _config(config, options)
+    if compute is not None and compute.scheduler is not None:
+        from .distributed import mine_on_cluster  # its output is a folder, checked there
+
+        return mine_on_cluster(source, out, config=cfg, compute=compute, force=force, quiet=quiet,
+                               return_triplets=return_triplets, table_options=table_options)
     if out is not None:
         out = Path(out)
         dup_out = duplicates_path(out)
@@ -966,11 +971,6 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
             src = Path(source).resolve()
             if src in (out.resolve(), dup_out.resolve()):
                 raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
-    if compute is not None and compute.scheduler is not None:
-        from .distributed import mine_on_cluster
-
-        return mine_on_cluster(source, out, config=cfg, compute=compute, force=force, quiet=quiet,
-                               return_triplets=return_triplets, table_options=table_options)
     table = as_table(source, **(table_options or {}))
     with contextlib.ExitStack() as stack:
         tmp_out = tmp_dup = None
