@@ -14,7 +14,9 @@ Four parts, all on this machine (figures go to docs/benchmarks_distributed.md):
    covered (queries x gallery rows), i.e. the per-core search rate inside the pipeline, the
    driver's own CPU time (reading, planning, selection, writing) and how long it waited for
    searches. CPU seconds, unlike wall seconds, hardly move when other jobs share the machine.
-4. ``rate``: the raw per-core exact search rate of faiss (``IndexFlatIP``, top-100, one thread) at
+4. ``demo``: part 3 on the demo training table (noisy embeddings: wide semi-hard bands, many
+   candidates per anchor, so the driver's selection weighs more).
+5. ``rate``: the raw per-core exact search rate of faiss (``IndexFlatIP``, top-100, one thread) at
    ``--dim``, in a subprocess with one BLAS/OpenMP thread.
 
 The tables are the clustered synthetic data of bench/bench_mining.py (identities in families of
@@ -122,11 +124,18 @@ def part_score(args, compute, work, res):
                     "identical": identical, "load": [load0, _load()]}
 
 
-def part_mine(args, compute, work, res):
+def part_mine(args, compute, work, res, demo=False):
     from tripletkit.mining import mine
 
-    table = make_table(args.mine_rows, args.mine_rows // 50, args.dim, seed=2)
-    folder = write_folder(table, work / "train")
+    if demo:
+        folder = Path(__file__).resolve().parents[1] / "demo_data" / "train_embeddings.parquet"
+        from tripletkit.table import EmbeddingTable
+
+        table, work, key = EmbeddingTable.read(folder), work / "demo", "demo"
+        work.mkdir()
+    else:
+        table = make_table(args.mine_rows, args.mine_rows // 50, args.dim, seed=2)
+        folder, key = write_folder(table, work / "train"), "mine"
     load0 = _load()
     t0, c0 = time.perf_counter(), time.process_time()
     one = mine(folder, work / "one.parquet", quiet=True)
@@ -138,7 +147,7 @@ def part_mine(args, compute, work, res):
     identical = pa.concat_tables([pq.read_table(p) for p in parts]).equals(pq.read_table(work / "one.parquet"))
     assert identical, "cluster triplets differ from the single-process triplets"
     d = many.details
-    res["mine"] = {"rows": table.n, "dim": table.dim, "identities": table.n_identities, "triplets": one.n_triplets,
+    res[key] = {"rows": table.n, "dim": table.dim, "identities": table.n_identities, "triplets": one.n_triplets,
                    "single_s": single, "single_cpu_s": single_cpu, "cluster_s": cluster, "shards": d["shards"],
                    "driver_s": d["driver_seconds"], "driver_cpu_s": d["driver_cpu_seconds"],
                    "search_tasks": d["search_tasks"], "search_cpu_s": d["search_cpu_seconds"],
@@ -182,7 +191,7 @@ def main(argv=None):
     p.add_argument("--workers", type=int, default=2)
     p.add_argument("--tasks", type=int, default=2000)
     p.add_argument("--rate-gallery", type=int, default=100000)
-    p.add_argument("--parts", default="overhead,score,mine,rate")
+    p.add_argument("--parts", default="overhead,score,mine,demo,rate")
     p.add_argument("--workdir", default=None, help="scratch folder (default: a new temporary folder)")
     p.add_argument("--json", default=None)
     args = p.parse_args(argv)
@@ -205,6 +214,8 @@ def main(argv=None):
             part_score(args, compute, work, res)
         if "mine" in parts:
             part_mine(args, compute, work, res)
+        if "demo" in parts:
+            part_mine(args, compute, work, res, demo=True)
     if "rate" in parts:
         part_rate(args, res)
     res["load_end"] = _load()

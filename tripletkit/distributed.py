@@ -57,11 +57,16 @@ lost the scheduler reruns what it held on another worker; when the lost worker r
 the driver starts again (its shard tasks are found again by key when still held) and the result
 is the same. Output is written into ``.OUT.tmp-*/.attempt-*/`` by the driver and moved into
 place by the client only when the driver has returned, so a retried driver never mixes with the
-parts of an earlier attempt. When the client dies: an exception, Ctrl-C or SIGTERM removes the
-temporary folder (a driver still running then stops at its next block, which checks for its
-folder); a hard kill (SIGKILL, power loss) leaves the dot-prefixed ``.OUT.tmp-*`` folder
-behind, and a driver still running on a remote cluster may go on writing into it until it
-finishes. ``OUT`` itself is never half-written: it appears by one rename or not at all.
+parts of an earlier attempt. ``OUT`` itself is never half-written: it appears by one rename or
+not at all. When the client dies:
+
+- an exception, Ctrl-C or SIGTERM: the temporary folder and file are removed on the way out;
+- a hard kill (SIGKILL, power loss): ``.OUT.tmp-*`` (holding an unfinished attempt) and
+  ``.<stem>.duplicates.parquet.tmp-*`` stay behind beside ``OUT``; delete them.
+
+In both cases the driver task, which Dask cannot interrupt, stops at its next block of anchors:
+it checks that its folder still exists and that the scheduler still wants its result (with
+``local-cluster`` the workers die with the client anyway).
 
 Dask moves task arguments and results between its processes with its own serialisation (pickle
 among them): connect only to a scheduler you trust.
@@ -575,7 +580,8 @@ class _ShardedIndex(SearchIndex):
             order = np.argsort(-D, axis=1, kind="stable")[:, :k]
             D, I = np.take_along_axis(D, order, axis=1), np.take_along_axis(I, order, axis=1)
             topk = (D, I, self._bound(D, I, k))
-        order = np.lexsort((rs, qs))
+        # grouped by query (the order within a query does not matter to the miner, which sorts)
+        order = np.argsort(qs, kind="stable")
         return _csr(qs[order], rs[order], ss[order], q, widened, topk)
 
 
