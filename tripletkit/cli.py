@@ -256,9 +256,12 @@ def _text(obj, indent=0):
     return lines
 
 
+class _Terminated(SystemExit):
+    """SIGTERM as an exception: atomic outputs clean up their temporary files on the way out."""
+
+
 def _on_sigterm(signum, frame):
-    # Turn SIGTERM into an exception so that atomic outputs clean up their temporary files.
-    raise SystemExit(128 + signum)
+    raise _Terminated(128 + signum)
 
 
 def _one_line(text):
@@ -317,6 +320,9 @@ def main(argv=None):
             raise
         print("interrupted: no output was written", file=sys.stderr)
         return 130
+    except _Terminated as exc:
+        print("terminated: no output was written", file=sys.stderr)
+        return exc.code
     except OSError as exc:
         if args.debug:
             raise
