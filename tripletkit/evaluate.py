@@ -219,6 +219,17 @@ def _stage(name, fn, notes, quiet, describe=""):
 # ---------------------------------------------------------------------------------------------
 # the public entry
 # ---------------------------------------------------------------------------------------------
+def _guard_memory(table, cfg):
+    """Refuse, with a suggestion, a scoring run whose blocks would not fit in memory."""
+    from ._memory import estimate_and_guard, scoring_bytes
+
+    sizes = table.identity_sizes()
+    need = scoring_bytes(table.n, table.dim, cfg.block_rows, memory_mb=cfg.memory_mb,
+                         genuine_pairs=int((sizes * (sizes - 1) // 2).sum()), identities=table.n_identities)
+    estimate_and_guard(f"scoring {table.n:,} x {table.dim} rows", max(0, need - table.n * table.dim * 4),
+                       suggestion="lower --memory-mb or --block-rows, or score a fixed --pairs list")
+
+
 def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None):
     """Score held-out embeddings: verification, retrieval, clustering and embedding health.
 
@@ -304,6 +315,7 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
     if cfg.pairs is not None:
         pairs = read_pair_list(cfg.pairs, table)
     stage_seconds["load"] = time.perf_counter() - t0
+    _guard_memory(table, cfg)
     _say(quiet, f"read {table.n:,} rows, {table.n_identities:,} identities, dimension {table.dim}"
          + (f", {table.dropped:,} invalid rows dropped" if table.dropped else ""))
 

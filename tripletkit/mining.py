@@ -972,6 +972,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
             if src in (out.resolve(), dup_out.resolve()):
                 raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     table = as_table(source, **(table_options or {}))
+    _guard_memory(table, cfg, return_triplets)
     with contextlib.ExitStack() as stack:
         tmp_out = tmp_dup = None
         if out is not None:
@@ -982,6 +983,21 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     if out is not None:
         summary.out, summary.duplicates_out = str(out), str(dup_out)
     return summary
+
+
+def _guard_memory(table, cfg, return_triplets):
+    """Refuse, with a suggestion, a run whose index and blocks would not fit in memory."""
+    from ._memory import estimate_and_guard, mining_bytes
+
+    n, d = table.n, table.dim
+    need = mining_bytes(n, d, cfg.block_rows, cfg.neighbours, cfg.index, exact_below=cfg.exact_below,
+                        hnsw_m=cfg.hnsw_m, ivf_nlist=cfg.ivf_nlist, memory_mb=cfg.memory_mb,
+                        positives_per_anchor=cfg.positives_per_anchor,
+                        triplets=n * cfg.positives_per_anchor * cfg.negatives_per_positive * len(cfg.regimes)
+                        if return_triplets else 0)
+    # The table is already loaded: its matrix is no longer part of what must still fit.
+    estimate_and_guard(f"mining {n:,} x {d} rows", max(0, need - n * d * 4),
+                       suggestion="lower --memory-mb or --block-rows, or use --index ivf")
 
 
 def _mine_table(table, cfg, tmp_out, tmp_dup, *, quiet=False, return_triplets=False, build=build_index,
