@@ -11,6 +11,7 @@ repository in that site-packages is not active there (its hook is a .pth file of
 and .pth files are only read in the environment's own site folders), which the test checks.
 """
 
+import json
 import os
 import shutil
 import subprocess
@@ -90,4 +91,7 @@ def test_demo_runs_from_outside_the_repository(installed, tmp_path):
                 "score/report.json", "score/report.md", "score/roc_det.png", "sweep/sweep.json", "sweep/sweep.md"):
         assert (out / rel).is_file(), rel
     assert sorted(p.name for p in tmp_path.iterdir()) == ["seal-demo"]  # nothing else, no temporary folder
+    # the sweep names the config where it is now, not the temporary folder it was written in
+    recorded = json.loads((out / "sweep" / "sweep.json").read_text())["config"]
+    assert (tmp_path / recorded).is_file() and ".tmp-" not in recorded
     assert "error" not in proc.stderr.lower()

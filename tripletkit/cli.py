@@ -247,8 +247,9 @@ def _text(obj, indent=0):
         if isinstance(value, dict):
             lines.append(f"{pad}{key}:")
             lines.extend(_text(value, indent + 1))
-        elif isinstance(value, list) and len(value) > 12:
-            lines.append(f"{pad}{key}: [{len(value)} values]")
+        elif isinstance(value, list) and (len(value) > 12 or any(isinstance(v, (dict, list)) for v in value)):
+            # long lists and lists of records (a sweep's runs) are for --json, not for a summary
+            lines.append(f"{pad}{key}: [{len(value)} {'entries' if any(isinstance(v, dict) for v in value) else 'values'}]")
         elif isinstance(value, float):
             lines.append(f"{pad}{key}: {value:.6g}")
         else:

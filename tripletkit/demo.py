@@ -530,6 +530,12 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
             from .sweep import sweep as run_sweep
 
             result = run_sweep(cfg_path, out=tmp / "sweep", quiet=quiet)
+            # sweep.json names its config by the path it was given: the temporary folder's, which
+            # is gone after the rename; record where the file will be
+            sweep_json = tmp / "sweep" / "sweep.json"
+            recorded = json.loads(sweep_json.read_text(encoding="utf-8"))
+            recorded["config"] = str(out / "sweep.toml")
+            sweep_json.write_text(json.dumps(recorded, indent=2) + "\n", encoding="utf-8")
             summary["sweep"] = {"best": result["comparison"]["best"], "runner_up": result["comparison"]["runner_up"],
                                 "verdict": result["comparison"]["verdict"]}
         (tmp / "demo.json").write_text(json.dumps(jsonable(summary), indent=2))
