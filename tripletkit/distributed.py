@@ -45,6 +45,11 @@ one process. faiss scores only pre-select (with the float32 safety band) and eve
 made on float64 cosines, so with the exact index the triplets are the same as in one process,
 row for row (only ``index = exact`` is available here; ``auto`` must resolve to it).
 
+Limits: the driver holds the whole table, as one process would, and selects serially; what is
+spread is the search, whose cost grows with the square of the rows. Scoring spreads the
+products of verification; every worker holds the (held-out) matrix. docs/benchmarks_distributed.md
+works out what that means for a 50M-row dump.
+
 The output is a folder ``OUT`` of part files ``part-00000.parquet``, ``part-00001.parquet``, ...
 of at most :data:`PART_ROWS` triplets each, in the row order of the single file (read it with
 ``pyarrow.parquet.read_table(OUT)``), and ``<stem>.duplicates.parquet`` beside it, as in one
@@ -92,7 +97,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_output
+from ._io import atomic_path, check_not_input, check_output
 from .config import ComputeConfig
 from .index import SearchIndex, _csr, build_index
 from .table import EmbeddingTable
@@ -420,7 +425,7 @@ def score_on_cluster(source, out=None, *, config=None, compute, force=False, qui
             f"config must be an EvaluationConfig (the [evaluation] section), got {type(config).__name__}"
         )
     if out is not None:
-        check_output(out, force=force)
+        check_output(out, force=force, directory=True)
     path, shown, options, expect = _source(source, table_options)
     run_config = config
     if config.pairs is not None:  # the workers need a path they can resolve
@@ -744,11 +749,10 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
     if out is not None:
         out = Path(out)
         dup_out = duplicates_path(out)
-        check_output(out, force=force)
-        check_output(dup_out, force=force)
-        src, target = Path(path), out.resolve()
-        if src == dup_out.resolve() or src == target or target in src.parents:
-            raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
+        check_output(out, force=force, directory=True)
+        check_output(dup_out, force=force, directory=False)
+        check_not_input(out, [path])
+        check_not_input(dup_out, [path])
     with cluster(compute) as client, contextlib.ExitStack() as stack:
         parts = _shards(client, compute)
         workers = len(client.scheduler_info().get("workers", {}))
