@@ -218,6 +218,38 @@ def part_scaling(args, results, cache):
     results["scaling"] = {"approx": spec, "rows": rows_out}
 
 
+def markdown(results):
+    """Markdown tables of a results JSON (what docs/benchmarks_mining.md shows)."""
+    lines = []
+    ex = results.get("exact")
+    if ex:
+        lines += ["| run | raw faiss flat k=100 (s) | exact mining (s) | ratio |", "|---|---|---|---|"]
+        for i, (b, m) in enumerate(zip(ex["baseline_seconds"], ex["mine_seconds"]), 1):
+            lines.append(f"| {i} | {b:.1f} | {m:.1f} | {m / b:.2f}x |")
+        lines.append(f"| best of each | {min(ex['baseline_seconds']):.1f} | {min(ex['mine_seconds']):.1f} | "
+                     f"{ex['ratio_best']:.2f}x |")
+        lines += ["", f"peak RSS during the call: mining {ex['mine_peak_mb']:.0f} MB, raw search "
+                  f"{ex['baseline_peak_mb']:.0f} MB; matrix {ex['matrix_mb']:.0f} MB, target 2 x matrix + 1 GB = "
+                  f"{ex['memory_target_mb']:.0f} MB", ""]
+    ap = results.get("approx")
+    if ap:
+        lines += [f"exact mining of {ap['rows']} rows: {ap['exact_seconds']:.1f} s, peak {ap['exact_peak_mb']:.0f} MB",
+                  "", "| index | seconds (before, after exact) | speedup vs exact | recall | peak MB |",
+                  "|---|---|---|---|---|"]
+        for r in ap["runs"]:
+            lines.append(f"| {r['spec']} | {r['seconds'][0]:.1f}, {r['seconds'][1]:.1f} | {r['speedup']:.1f}x | "
+                         f"{r['recall']:.4f} | {r['peak_mb']:.0f} |")
+        lines.append("")
+    sc = results.get("scaling")
+    if sc:
+        lines += [f"| rows | exact (s) | {sc['approx']} (s) | recall | exact peak MB | widened anchors | triplets |",
+                  "|---|---|---|---|---|---|---|"]
+        for r in sc["rows"]:
+            lines.append(f"| {r['rows']} | {r['exact_seconds']:.1f} | {r['approx_seconds']:.1f} | {r['recall']:.4f} | "
+                         f"{r['exact_peak_mb']:.0f} | {r['widened']} | {r['triplets']} |")
+    return "\n".join(lines)
+
+
 def main(argv=None):
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--part", choices=("exact", "approx", "scaling", "all"), default="all")
@@ -238,11 +270,16 @@ def main(argv=None):
     p.add_argument("--block", type=int, default=16384, help="query block of the raw search")
     p.add_argument("--json", help="write all results to this JSON file")
     p.add_argument("--tmp", default=tempfile.gettempdir(), help="folder for the mined outputs")
+    p.add_argument("--markdown", metavar="JSON", help="print the tables of a results file and exit")
     p.add_argument("--child", choices=("baseline", "mine"), help=argparse.SUPPRESS)
     p.add_argument("--index", default="exact", help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
         return child(args)
+    if args.markdown:
+        with open(args.markdown) as f:
+            print(markdown(json.load(f)))
+        return 0
     import faiss
 
     results = {"machine": {"cpus": os.cpu_count(), "faiss_threads": faiss.omp_get_max_threads(),
