@@ -9,23 +9,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError, TripletkitWarning
 import tripletkit.metrics.verification as V
-
-
-def _four_squares(rem):
-    """Four non-negative integers whose squares sum to ``rem`` (Lagrange: they always exist)."""
-    for a in range(math.isqrt(rem) + 1):
-        for b in range(a + 1):
-            r2 = rem - a * a - b * b
-            if r2 < 0:
-                break
-            for c in range(b + 1):
-                r3 = r2 - c * c
-                if r3 < 0:
-                    break
-                e = math.isqrt(r3)
-                if e * e == r3 and e <= c:
-                    return a, b, c, e
-    raise AssertionError(rem)
+from _lattice import four_squares as _four_squares
 
 
 def exact_table(rng, n, k, d=12, spread=12, scale=64):
