@@ -172,13 +172,19 @@ def test_scoring_bytes_hand_computed():
         scoring_bytes(1000, 8, 100, memory_mb=16) == 16_000
 
 
-def test_scoring_bytes_huge_dimension_is_refused():
-    # health's (d, d) float64 matrices: 3 * 100,000^2 * 8 bytes = 240 GB for a 12-row table
-    need = scoring_bytes(12, 100_000, 0)
-    assert need >= 3 * 100_000**2 * 8
+def test_scoring_bytes_health_term_grows_with_min_n_d_squared():
+    # the effective dimension builds the smaller of the (d, d) scatter and the (n, n) Gram
+    # matrix: 12 rows of 100,000 dimensions need a 12 x 12 matrix, not 80 GB (d^2 * 8 bytes)
+    wide = scoring_bytes(12, 100_000, 0)
+    assert wide < 2**30
+    # hand-computed where health is the largest stage: n = d = 2,000, one row per block,
+    # memory_mb = 1 -> table 2,000 * 2,000 * 4 = 16,000,000; health 8 * 2,000^2 (the matrix)
+    # + 16 * 2,000 * 2,000 (a block of float64 rows and its centred copy) = 96,000,000, above
+    # verification (table + 12 * 2,000 + histograms 29,474,816 + 524,288 kept) and retrieval
+    assert scoring_bytes(2000, 2000, 1, memory_mb=1) == 16_000_000 + 96_000_000
     with pytest.raises(TripletkitError, match="or use a lower-dimensional projection"):
-        estimate_and_guard("scoring 12 x 100,000", need, suggestion="or use a lower-dimensional projection",
-                           available=64 * GB)
+        estimate_and_guard("scoring 12 x 100,000", wide, suggestion="or use a lower-dimensional projection",
+                           available=wide // 2)
 
 
 @pytest.mark.parametrize("fn", [mining_bytes, scoring_bytes])

@@ -44,9 +44,6 @@ _BYTES_PER_TRIPLET = 80
 # Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
 # alive at once (measured with tracemalloc on small tables, where they dominate).
 _HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
-# Pairs per chunk of tripletkit.index.exact_cosine; each chunk gathers both sides' rows as float32
-# and copies them to float64 (12 bytes per value and side).
-_COSINE_CHUNK = 1 << 14
 # Verification keeps the highest impostor scores in at most this share of its memory budget
 # (tripletkit.metrics.verification._KEEP_SHARE).
 _KEEP_SHARE = 0.5
@@ -258,7 +255,7 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
     """
     _check_sizes(n=n, d=d, block_rows=block_rows, k=k, hnsw_m=hnsw_m, ivf_nlist=ivf_nlist, memory_mb=memory_mb,
                  positives_per_anchor=positives_per_anchor, triplets=triplets)
-    from .index import query_block_rows, resolve_kind
+    from .index import cosine_chunk_pairs, query_block_rows, resolve_kind
 
     kind = resolve_kind(index, n, exact_below)
     vectors = n * d * 4
@@ -276,7 +273,9 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
     # results of the widened (range) searches of a block: sized like the top-k block, a quarter
     # of the budget
     widened = memory_mb * _MB // 4
-    cosines = 2 * min(_COSINE_CHUNK, n * positives_per_anchor) * d * 12
+    # one chunk of tripletkit.index.exact_cosine: both sides as float32 and float64 (12 bytes
+    # per value and side), at most 16 MiB
+    cosines = 2 * min(cosine_chunk_pairs(d), n * positives_per_anchor) * d * 12
     return int(vectors + index_bytes + n * _MINER_BYTES_PER_ROW + block * kk * _BYTES_PER_NEIGHBOUR
                + widened + cosines + triplets * _BYTES_PER_TRIPLET)
 
@@ -304,8 +303,8 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
         The table and the verification's sorted, scaled copy (float32), two block products and
         a key buffer (12 bytes per score of a block), the score histograms, the kept genuine
         scores and highest impostor scores, the retrieval index and its result block, the
-        k-means copy and centroids, and the (d, d) float64 matrices of the effective dimension
-        (health; three of them at once: scatter, covariance and its square).
+        k-means copy and centroids, and the effective dimension's float64 (m, m) matrix, m =
+        min(n, d), with its block of centred values (health).
     """
     _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
                  identities=identities)
@@ -320,6 +319,7 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
                     + int(_KEEP_SHARE * budget))
     retrieval = vectors + budget
     clustering = vectors + identities * d * 4 + n * 8
-    health = 3 * d * d * 8
+    m = min(n, d)
+    health = 8 * m * m + 16 * m * min(65536, max(n, d))
     # the stages run one after another: the table stays, the largest stage sets the peak
     return int(vectors + max(verification, retrieval, clustering, health))

@@ -6,7 +6,8 @@
   identity gives the genuine part, which is subtracted (sums in float64).
 * ``effective_dimension``: the participation ratio of the covariance eigenvalues,
   ``(sum l)^2 / sum l^2``. It needs no eigendecomposition: ``sum l = trace(C)`` and
-  ``sum l^2 = ||C||_F^2`` for the symmetric covariance matrix ``C``. It is 1 when all variance
+  ``sum l^2 = ||C||_F^2`` for the symmetric covariance matrix ``C`` (computed from the (n, n)
+  Gram matrix when there are fewer rows than dimensions). It is 1 when all variance
   lies along one direction and d when it is spread evenly over d directions.
 * ``collapsed``: our rule of thumb (common practice, no source): a run is flagged as collapsed
   when the effective dimension is below 2 or the mean impostor cosine is above 0.9, i.e. the
@@ -87,7 +88,8 @@ def mean_impostor_cosine(embeddings, labels, *, block_rows=65536):
         return None
     all_pairs = _sum_pairs(total, sq)
     genuine = (float(np.einsum("ij,ij->", per_id, per_id)) - sq) / 2.0
-    return float((all_pairs - genuine) / n_imp)
+    # float32 rounding of unit rows can put the mean a few ulps outside [-1, 1]
+    return float(np.clip((all_pairs - genuine) / n_imp, -1.0, 1.0))
 
 
 def _add_rows(acc, codes, rows):
@@ -105,12 +107,19 @@ def effective_dimension(embeddings, *, block_rows=65536):
     ----------
     embeddings : array-like of shape (n, d), n >= 2
     block_rows : int, default 65536
-        Rows accumulated into the (d, d) float64 scatter matrix at a time.
+        Rows (or, when n < d, columns) converted to float64 at a time.
 
     Returns
     -------
     float
         Between 1 and d; ``None`` (with a warning) when all rows are identical (no variance).
+
+    Notes
+    -----
+    With ``Xc`` the centred rows, the (d, d) scatter matrix ``Xc^T Xc`` and the (n, n) Gram
+    matrix ``Xc Xc^T`` have the same non-zero eigenvalues, hence the same trace and the same
+    squared Frobenius norm. The smaller of the two is built, so the working set is
+    ``min(n, d)^2`` float64 values and never grows with ``d^2`` for a short table of wide rows.
 
     References
     ----------
@@ -122,14 +131,22 @@ def effective_dimension(embeddings, *, block_rows=65536):
     if n < 2:
         raise TripletkitError(f"effective_dimension needs at least 2 rows, got {n}")
     mean = x.mean(axis=0, dtype=np.float64)
-    scatter = np.zeros((d, d))
-    for s in range(0, n, int(block_rows)):
-        xb = x[s : s + int(block_rows)].astype(np.float64) - mean
-        scatter += xb.T @ xb
-    cov = scatter / (n - 1)
-    tr = float(np.trace(cov))
-    fro2 = float(np.sum(cov * cov))
-    if fro2 <= 0.0:
+    step = int(block_rows)
+    if n < d:
+        # (n, n) Gram matrix of the centred rows, accumulated over blocks of columns
+        m = np.zeros((n, n))
+        for s in range(0, d, step):
+            xb = x[:, s : s + step].astype(np.float64) - mean[s : s + step]
+            m += xb @ xb.T
+    else:
+        m = np.zeros((d, d))
+        for s in range(0, n, step):
+            xb = x[s : s + step].astype(np.float64) - mean
+            m += xb.T @ xb
+    # the 1 / (n - 1) of the covariance cancels in the ratio
+    tr = float(np.trace(m))
+    fro2 = float(np.einsum("ij,ij->", m, m))
+    if fro2 <= 0.0 or tr <= 0.0:
         warnings.warn("health: the embeddings have no variance; effective dimension is undefined",
                       TripletkitWarning, stacklevel=2)
         return None
