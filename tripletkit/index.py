@@ -57,7 +57,14 @@ __all__ = [
 KINDS = ("exact", "ivf", "hnsw")
 
 # Rows of float64 work per chunk in exact_cosine (two gathered (chunk, d) matrices).
-_COSINE_CHUNK = 1 << 14
+# Working set of one chunk of exact_cosine: both sides' rows gathered as float32 and copied to
+# float64 (24 bytes per pair and dimension); 16 MiB whatever the dimension.
+_COSINE_CHUNK_BYTES = 1 << 24
+
+
+def cosine_chunk_pairs(d):
+    """Pairs per chunk of :func:`exact_cosine` for dimension ``d`` (at least 64)."""
+    return int(max(64, _COSINE_CHUNK_BYTES // (24 * max(1, int(d)))))
 # Most queries passed to one faiss range search: large enough for BLAS efficiency.
 _RANGE_CHUNK_MAX = 4096
 
@@ -97,8 +104,9 @@ def exact_cosine(embeddings, a, b):
     b = np.asarray(b, dtype=np.int64)
     out = np.empty(a.shape[0], dtype=np.float64)
     d = embeddings.shape[1]
-    for s in range(0, a.shape[0], _COSINE_CHUNK):
-        e = min(s + _COSINE_CHUNK, a.shape[0])
+    chunk = cosine_chunk_pairs(d)
+    for s in range(0, a.shape[0], chunk):
+        e = min(s + chunk, a.shape[0])
         at = np.ascontiguousarray(embeddings[a[s:e]].T, dtype=np.float64)
         bt = np.ascontiguousarray(embeddings[b[s:e]].T, dtype=np.float64)
         acc = at[0] * bt[0]
