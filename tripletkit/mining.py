@@ -206,6 +206,9 @@ def _euclidean(d, kind):
     return np.sqrt(d) if kind == "squared" else d
 
 
+_ANTIPODAL_GAP = 1e-6
+
+
 def distance_log_weights(d, dim, cutoff=0.5):
     """Log sampling weights of distance-weighted sampling, log min(lambda, 1/q(d)).
 
@@ -221,7 +224,7 @@ def distance_log_weights(d, dim, cutoff=0.5):
     Returns
     -------
     ndarray of float64
-        log weights up to an additive constant; ``-inf`` where the weight is 0.
+        log weights up to an additive constant, all finite.
 
     Notes
     -----
@@ -230,12 +233,16 @@ def distance_log_weights(d, dim, cutoff=0.5):
     the chosen distances evenly instead of concentrating them near sqrt(2); the cap lambda keeps
     very close (often noisy) negatives from dominating.
 
+    Distances are clipped to ``[0, 2 - 1e-6]``: in dimension 2, q diverges at d = 2 and an
+    antipodal candidate would otherwise get weight 0, so a pair whose only candidates are
+    antipodal would silently get no negative. After the clip it gets the smallest weight.
+
     References
     ----------
     .. [1] C.-Y. Wu, R. Manmatha, A. J. Smola, P. Kraehenbuehl, "Sampling Matters in Deep
        Embedding Learning", ICCV 2017, Sec. 4 (q(d), and the weights min(lambda, q(d)^-1)).
     """
-    d = np.clip(np.asarray(d, dtype=np.float64), 0.0, 2.0)
+    d = np.clip(np.asarray(d, dtype=np.float64), 0.0, 2.0 - _ANTIPODAL_GAP)
     return np.minimum(-_log_density(d, dim), -_log_density(np.float64(cutoff), dim))
 
 
@@ -967,10 +974,9 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         dup_out = duplicates_path(out)
         check_output(out, force=force)
         check_output(dup_out, force=force)
-        if isinstance(source, (str, Path)):
-            src = Path(source).resolve()
-            if src in (out.resolve(), dup_out.resolve()):
-                raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
+        src = source if isinstance(source, (str, Path)) else getattr(source, "source", None)
+        if src is not None and Path(src).resolve() in (out.resolve(), dup_out.resolve()):
+            raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     table = as_table(source, **(table_options or {}))
     _guard_memory(table, cfg, return_triplets)
     with contextlib.ExitStack() as stack:
