@@ -140,22 +140,11 @@ def test_mined_triplets_satisfy_the_regime_definitions(table, options):
     assert (s.active_fraction is None) == (active is None)
     if n_trip:
         assert s.active_fraction == pytest.approx(active, abs=1e-9) and 0.0 <= s.active_fraction <= 1.0
-    if not (options["select"] == "distance-weighted" and _antipodal_negative(U, labels)):
-        # (a distance-weighted pair whose only candidates are antipodal is the xfail below)
-        _check_counts_per_pair(s, labels, D, m, options)
+    _check_counts_per_pair(s, labels, D, m, options)
     # max_per_identity caps distinct anchors per identity
     if options["max_per_identity"] is not None and n_trip:
         per_identity = np.bincount(labels[np.unique(a)])
         assert per_identity.max() <= options["max_per_identity"]
-
-
-def _antipodal_negative(U, labels):
-    """Whether some row has a row of another label at cosine -1 (distance-weighted gives those
-    weight 0 in dimension 2, where the distance density diverges at d = 2)."""
-    if U.shape[1] != 2:
-        return False
-    cos = U @ U.T
-    return bool(np.any((cos <= -1 + 1e-12) & (labels[:, None] != labels[None, :])))
 
 
 def _check_counts_per_pair(s, labels, D, m, options):
@@ -369,11 +358,6 @@ def test_mine_gives_a_summary_or_one_clear_line(case, options, drop):
     assert d["active_fraction"] is None or 0.0 <= d["active_fraction"] <= 1.0
 
 
-@pytest.mark.xfail(strict=True, reason="mining, select=distance-weighted: in dimension 2 the distance density "
-                   "q(d) ~ (1 - d^2/4)^(-1/2) diverges at d = 2, so antipodal candidates get weight 0 and are never "
-                   "drawn; a pair whose candidates are all antipodal gets no negative and is not counted in "
-                   "pairs_without_negative (fix: give -inf log weights the smallest finite weight of the pair, or "
-                   "clip the Euclidean distance to [eps, 2 - eps] in distance_log_weights)")
 def test_distance_weighted_never_drops_a_pair_silently():
     # found by test_mined_triplets_satisfy_the_regime_definitions; rows of dimension 2: ten of
     # identity 0 at (1, 0), one of identity 0 at (-1, 0), one of identity 1 at (1, 0). The pairs
