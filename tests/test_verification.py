@@ -188,6 +188,66 @@ def test_kept_impostors_are_exactly_those_above_the_floor(rng):
     assert np.all(blocks.codes[rows] != blocks.codes[cols])
 
 
+def test_kept_impostors_merged_over_workers_are_exactly_those_above_the_floor(rng):
+    # each worker keeps its own highest impostors; the merge is complete from the highest floor
+    x, labels = random_table(rng, 300, 30)
+    blocks = V._Blocks(x, labels, None, 17, 1 << 20)
+    top = V._TopImpostors(500, 300 * 299 // 2, 1 << 16)
+    V._pass_one(blocks, top, workers=3)
+    every = np.concatenate([v for r0, s in blocks
+                            for v, _, _ in blocks.impostors_at_or_above(r0, s, -np.inf, 1 << 16)])
+    keys, kept, rows, cols = top.result()
+    assert top.floor > 1 and kept.size >= 500
+    assert np.array_equal(np.sort(kept), np.sort(every[V._keys_of(every) >= top.floor]))
+    assert np.all(blocks.codes[rows] != blocks.codes[cols])
+
+
+def test_report_does_not_depend_on_workers_or_blas_threads(rng):
+    # ordinary floats (not the exact lattice), many blocks, groups and bootstrap: every number
+    # of the report is the same for 1, 2 or 3 worker threads and for 1 or 2 BLAS threads of the
+    # process, since each block product runs with one BLAS thread; only ``passes`` may differ.
+    # (With the OpenBLAS of numpy 2.4 these products also agree across BLAS thread counts when
+    # left alone; the BLAS part guards the contract for builds where they do not.)
+    from threadpoolctl import threadpool_limits
+
+    x, labels = random_table(rng, 1200, 60, d=48)
+    groups = rng.choice(["north", "south"], size=len(x))
+    kw = dict(fmr_targets=[0.001, 0.01], bootstrap=30, block_rows=71, groups=groups)
+    reports = []
+    for blas in (1, 2):
+        with threadpool_limits(limits=blas, user_api="blas"):
+            for workers in (1, 2, 3):
+                r = V.verify_all_pairs(x, labels, workers=workers, **kw)
+                r.pop("passes")
+                reports.append(r)
+    assert all(r == reports[0] for r in reports[1:])
+
+
+def test_a_failing_worker_stops_the_pass_with_its_error(rng, monkeypatch):
+    x, labels = random_table(rng, 400, 20)
+    original = V._count_block
+    seen = []
+
+    def failing(blocks, r0, s, hist, tmp):
+        seen.append(r0)
+        if r0 == 2 * 13:  # the third block, worker 0 of 2
+            raise ValueError("disk on fire")
+        return original(blocks, r0, s, hist, tmp)
+
+    monkeypatch.setattr(V, "_count_block", failing)
+    with pytest.raises(ValueError, match="disk on fire"):
+        V.verify_all_pairs(x, labels, block_rows=13, bootstrap=0, workers=2)
+    # the other worker stopped early instead of counting its remaining blocks
+    assert len(seen) < len(range(0, 400, 13))
+
+
+def test_workers_must_be_a_positive_whole_number(table):
+    x, labels = table
+    for bad in (0, -1, 1.5, True, "2"):
+        with pytest.raises(TripletkitError, match="workers must be a whole number"):
+            V.verify_all_pairs(x, labels, workers=bad)
+
+
 def test_histogram_counting_matches_bincount(rng):
     keys = rng.integers(1, V._NBINS, size=100_000).astype(np.int32)
     acc = np.zeros(V._NBINS, np.int64)

@@ -44,6 +44,10 @@ _BYTES_PER_TRIPLET = 80
 # Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
 # alive at once (measured with tracemalloc on small tables, where they dominate).
 _HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
+# Each verification worker thread: per score of a block a float32 product, an int32 key and a
+# selection byte; and its own int64 histogram with an int32 scratch one.
+_BYTES_PER_BLOCK_SCORE = 9
+_WORKER_HISTOGRAM_BYTES = 12 * (2**19 + 2**11)
 # Verification keeps the highest impostor scores in at most this share of its memory budget
 # (tripletkit.metrics.verification._KEEP_SHARE).
 _KEEP_SHARE = 0.5
@@ -280,7 +284,7 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
                + widened + cosines + triplets * _BYTES_PER_TRIPLET)
 
 
-def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0):
+def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0, workers=None):
     """Estimated peak bytes of :func:`tripletkit.evaluate.score` on all pairs of an ``n x d`` table.
 
     Parameters
@@ -296,6 +300,9 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
         for the exact operating points.
     identities : int
         Identities (the k of the clustering's k-means).
+    workers : int, optional
+        Verification worker threads (default: as the verification chooses them, one per CPU
+        within the budget; see :func:`tripletkit.metrics.verification.default_workers`).
 
     Returns
     -------
@@ -313,10 +320,13 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
     if block_rows:
         b = min(block_rows, nn)
     else:
-        b = min(max(1, budget // (13 * nn)), max(256, nn // 16), nn)
+        b = min(max(1, budget // (2 * _BYTES_PER_BLOCK_SCORE * nn)), max(256, nn // 16), nn)
+    if workers is None:
+        workers = min(os.cpu_count() or 1, max(1, budget // (_BYTES_PER_BLOCK_SCORE * b * nn)))
+    workers = max(1, min(int(workers), -(-nn // b)))
     vectors = n * d * 4
-    verification = (vectors + 12 * b * n + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE
-                    + int(_KEEP_SHARE * budget))
+    verification = (vectors + workers * (_BYTES_PER_BLOCK_SCORE * b * n + _WORKER_HISTOGRAM_BYTES)
+                    + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE + int(_KEEP_SHARE * budget))
     retrieval = vectors + budget
     clustering = vectors + identities * d * 4 + n * 8
     m = min(n, d)

@@ -25,10 +25,10 @@ of rows with all later rows).
 Why row blocks and not smaller (row block, column block) tiles: BLAS float32 products depend on
 the shape of the call and on the BLAS thread count (measured with OpenBLAS 0.3.31: 3.4% of the
 products of a 256-row block change in the last bit when it is multiplied with 500 instead of
-2744 columns, and the demo report's AUC changes between 1 and 2 BLAS threads). The tasks make
-the very calls of the single-process plan, with the BLAS and OpenMP thread counts of the client
-process, so the report is identical to the single-process one computed on the same kind of
-machine, except ``verification.passes`` (always 2 here; the single-process plan may list the
+2744 columns, and an earlier version's demo report AUC changed between 1 and 2 BLAS threads).
+The tasks make the very calls of the single-process plan, each product with one BLAS thread as
+there (tripletkit.metrics.verification runs every block product so), so the report is identical
+to the single-process one computed with the same BLAS build, except ``verification.passes`` (always 2 here; the single-process plan may list the
 refined bins from impostors kept in its first pass) and the timings.
 
 Mining (:func:`mine_on_cluster`)

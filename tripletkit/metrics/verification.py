@@ -14,7 +14,8 @@ Three ways to build the table:
   The exact scores of the few bins that hold an operating point (each FMR target, the EER
   crossing) are then listed, from the highest impostor scores kept during the counting pass
   when those reach low enough, else by a second pass over the same blocks; so the operating
-  points are exactly what every score would give. Memory is O(n*d + block*n).
+  points are exactly what every score would give. Worker threads (one per CPU) compute and count
+  blocks side by side, each product with one BLAS thread. Memory is O(n*d + workers*block*n).
 * :func:`verify_pairs` scores a fixed protocol: a list of (left, right) row pairs.
 * :func:`verify_scores` takes genuine and impostor scores directly.
 
@@ -56,13 +57,17 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+import copy
 import math
+import os
+import threading
 import warnings
 from concurrent.futures import ThreadPoolExecutor
 from typing import NamedTuple
 
 import faiss
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from .._errors import TripletkitError, TripletkitWarning
 from .._validate import as_codes, as_embeddings, check_same_length
@@ -325,6 +330,12 @@ def _check_common(bootstrap, confidence, curve_points):
         raise TripletkitError(f"confidence must lie in (0, 1), got {confidence!r}; e.g. 0.95")
     if isinstance(curve_points, bool) or not isinstance(curve_points, (int, np.integer)) or curve_points < 8:
         raise TripletkitError(f"curve_points must be a whole number >= 8, got {curve_points!r}")
+
+
+def _check_workers(workers):
+    if isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1:
+        raise TripletkitError(f"workers must be a whole number >= 1, got {workers!r}")
+    return int(workers)
 
 
 def _check_unit(x, name):
@@ -837,6 +848,9 @@ _WINDOW = np.uint8(2)
 # Above this share of scores at or above the lowest bin the second pass needs, it looks every
 # score's bin up in a table instead of comparing and listing positions.
 _TABLE_SHARE = 0.3
+# Buffers of one worker per score of a block: the float32 product, its int32 bin key and a byte
+# of selection.
+_BYTES_PER_BLOCK_SCORE = 9
 # Share of the memory budget that the impostor scores kept in the first pass may take.
 _KEEP_SHARE = 0.5
 
@@ -890,14 +904,21 @@ def _lowest_scaled_in(k):
 
 
 class _Blocks:
-    """Rows sorted by identity, scaled, and cut into blocks of rows against all later rows."""
+    """Rows sorted by identity, scaled, and cut into blocks of rows against all later rows.
+
+    The block size depends only on ``n``, ``block_rows`` and ``memory_budget`` (never on the
+    number of threads), and every product is computed with one BLAS thread (see
+    :func:`_one_blas_thread`), so a score is the same float whichever thread, pass or process
+    computes its block. :meth:`view` gives a copy sharing the rows with buffers of its own, for
+    one worker thread.
+    """
 
     def __init__(self, x, codes, gcodes, block_rows, memory_budget):
         order = np.argsort(codes, kind="stable")
         n = x.shape[0]
-        # two float32 products (one being computed while the other is counted) + int32 key
-        # (+ one byte of selection) per score of a block
-        block_rows_budget = max(1, int(memory_budget // (13 * max(n, 1))))
+        # two workers' buffers: a float32 product, an int32 bin key and a byte of selection per
+        # score of a block each
+        block_rows_budget = max(1, int(memory_budget // (2 * _BYTES_PER_BLOCK_SCORE * max(n, 1))))
         if block_rows is None:
             # the leading square of each block is computed in full but only its upper half is
             # used: keep blocks to a sixteenth of the rows (at least 256) so that little is wasted
@@ -927,39 +948,40 @@ class _Blocks:
         self.b = int(b)
         self.sizes = np.bincount(self.codes)
         self.starts = np.concatenate([[0], np.cumsum(self.sizes)[:-1]])
-        self._s = [np.empty(self.b * n, np.float32), np.empty(self.b * n, np.float32)]
-        self.kbuf = np.empty(self.b * n, np.int32)
+        self._sbuf = self._kbuf = None
 
-    def _product(self, r0, buf):
+    def view(self):
+        """The same rows and blocks with buffers of its own (allocated on first use)."""
+        other = copy.copy(self)
+        other._sbuf = other._kbuf = None
+        return other
+
+    @property
+    def kbuf(self):
+        """int32 buffer of one block's bin keys."""
+        if self._kbuf is None:
+            self._kbuf = np.empty(self.b * self.n, np.int32)
+        return self._kbuf
+
+    def product(self, r0):
+        """Scaled scores of the block starting at row ``r0`` against rows ``r0..n-1``, in this
+        view's buffer (valid until its next call); entries ``j <= i`` hold ``_SENTINEL``."""
+        if self._sbuf is None:
+            self._sbuf = np.empty(self.b * self.n, np.float32)
         n = self.n
         r1 = min(n, r0 + self.b)
         rows, m = r1 - r0, n - r0
-        s = buf[: rows * m].reshape(rows, m)
+        s = self._sbuf[: rows * m].reshape(rows, m)
         np.matmul(self.xs[r0:r1], self.xs[r0:].T, out=s)
         for a in range(rows):  # j <= i: not a pair of the upper triangle
             s[a, : a + 1] = _SENTINEL
         return s
 
     def __iter__(self):
-        """Yield (r0, scaled scores (rows, n - r0)). Identical calls, so identical floats, every pass.
-
-        The next block's product is computed in a second thread while the caller counts the
-        current one: BLAS threads then work instead of spinning between calls.
-        """
-        starts = self.block_starts()
-        if len(starts) == 1:
-            yield 0, self._product(0, self._s[0])
-            return
-        pool = ThreadPoolExecutor(max_workers=1)
-        try:
-            nxt = pool.submit(self._product, starts[0], self._s[0])
-            for t, r0 in enumerate(starts):
-                s = nxt.result()
-                if t + 1 < len(starts):
-                    nxt = pool.submit(self._product, starts[t + 1], self._s[(t + 1) % 2])
-                yield r0, s
-        finally:
-            pool.shutdown(wait=True)
+        """Yield (r0, scaled scores (rows, n - r0)) for every block, in order, in this thread."""
+        with _one_blas_thread():
+            for r0 in self.block_starts():
+                yield r0, self.product(r0)
 
     def genuine(self, r0, s):
         """Genuine scaled scores in this block, with identity and pair group (-1 = across groups)."""
@@ -1045,6 +1067,30 @@ class _TopImpostors:
             self.count = int(up.sum())
             self.floor = floor
 
+    def fresh(self):
+        """An empty instance with the same settings (one per worker thread)."""
+        return _TopImpostors(self.keep, 1, self.chunk)._with_share(self.share)
+
+    def _with_share(self, share):
+        self.share = share
+        return self
+
+    def absorb(self, parts):
+        """Become the union of ``parts`` (instances that each saw some blocks), complete from the
+        highest of their floors: every part holds every impostor of its blocks from its own floor
+        up, so the union restricted to the highest floor holds every impostor from there up."""
+        self.floor = max([self.floor] + [p.floor for p in parts])
+        self.vals, self.keys, self.rows, self.cols = [], [], [], []
+        self.count = 0
+        for p in parts:
+            kk, kv, kr, kc = p.result()
+            up = kk >= self.floor
+            self.keys.append(kk[up])
+            self.vals.append(kv[up])
+            self.rows.append(kr[up].astype(np.int32))
+            self.cols.append(kc[up].astype(np.int32))
+            self.count += int(up.sum())
+
     def result(self):
         if not self.vals:
             return np.empty(0, np.int32), np.empty(0, np.float32), np.empty(0, np.int64), np.empty(0, np.int64)
@@ -1071,6 +1117,97 @@ def _genuine_arrays(gvals, gids, ggrps):
     return gval, gid, ggrp
 
 
+@contextlib.contextmanager
+def _one_blas_thread():
+    """Run the block products with one BLAS thread.
+
+    Threads of our own run blocks side by side instead; and a product then does not depend on
+    the BLAS thread count of the process (OpenBLAS takes other code paths with more threads, and
+    the last bit of a score can differ), so neither does any number of the report.
+    """
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
+
+
+def default_workers(blocks, memory_budget):
+    """Worker threads for the passes: one per CPU, at most one per block, and as many as the
+    memory budget holds buffers for (two with the default block size)."""
+    per_worker = _BYTES_PER_BLOCK_SCORE * blocks.b * max(blocks.n, 1)
+    return int(max(1, min(os.cpu_count() or 1, len(blocks.block_starts()), memory_budget // per_worker)))
+
+
+def _in_workers(blocks, workers, work):
+    """Run ``work(w, view, starts)`` for worker ``w`` in ``workers`` threads; worker w takes blocks
+    w, w + workers, ... (a fixed assignment, so each worker's share is the same on every run).
+    Returns the results in worker order. An exception in one worker (or an interrupt of the
+    caller) stops the others at their next block."""
+    starts = blocks.block_starts()
+    workers = max(1, min(int(workers), len(starts)))
+    stop = threading.Event()
+
+    def run(w, view):
+        def part():
+            for r0 in starts[w::workers]:
+                if stop.is_set():
+                    raise _Stopped()
+                yield r0
+        return work(w, view, part())
+
+    with _one_blas_thread():
+        if workers == 1:
+            return [work(0, blocks, iter(starts))]
+        pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify")
+        try:
+            futures = [pool.submit(run, w, blocks.view()) for w in range(workers)]
+            return [f.result() for f in futures]
+        except BaseException:
+            stop.set()
+            raise
+        finally:
+            pool.shutdown(wait=True)
+
+
+class _Stopped(Exception):
+    """A worker stopped because another one failed."""
+
+
+def _count_part(view, part, top):
+    """First pass over the blocks ``part`` (an iterator of first rows) of one worker."""
+    hist = np.zeros(_NBINS, np.int64)
+    tmp = np.empty(_NBINS, np.int32)
+    genuine = []
+    first = True
+    for r0 in part:
+        s = view.product(r0)
+        v, i, g = _count_block(view, r0, s, hist, tmp)
+        genuine.append((r0, v, i, g))
+        if top is not None:
+            if first:
+                imp = tmp.astype(np.int64)
+                if v:
+                    imp -= np.bincount(_keys_of(np.concatenate(v)), minlength=_NBINS)
+                imp[0] = 0  # the key of entries that are not pairs
+                top.start(imp)
+                first = False
+            top.visit(view, r0, s)
+    return hist, genuine
+
+
+def _merge_counts(parts):
+    """Sum the histograms and concatenate the genuine scores of worker results in block order."""
+    hist = np.zeros(_NBINS, np.int64)
+    genuine = []
+    for h, g in parts:
+        hist += h
+        genuine += g
+    gvals, gids, ggrps = [], [], []
+    for _, v, i, g in sorted(genuine, key=lambda item: item[0]):
+        gvals += v
+        gids += i
+        ggrps += g
+    return (hist, *_genuine_arrays(gvals, gids, ggrps))
+
+
 def count_blocks(blocks, starts):
     """The counting pass over the blocks beginning at rows ``starts`` (no impostors kept).
 
@@ -1080,45 +1217,47 @@ def count_blocks(blocks, starts):
     None without groups). Summing ``hist`` and concatenating the rest over a partition of all
     blocks gives what the in-process pass gives.
     """
-    hist = np.zeros(_NBINS, np.int64)
-    tmp = np.empty(_NBINS, np.int32)
-    gvals, gids, ggrps = [], [], []
-    for r0 in starts:
-        v, i, g = _count_block(blocks, r0, blocks._product(r0, blocks._s[0]), hist, tmp)
-        gvals += v
-        gids += i
-        ggrps += g
-    return (hist, *_genuine_arrays(gvals, gids, ggrps))
+    with _one_blas_thread():
+        return _merge_counts([_count_part(blocks, iter(starts), None)])
 
 
 def refine_blocks(blocks, starts, ref, chunk, use_table):
     """The second pass of :func:`verify_all_pairs` over the blocks beginning at rows ``starts``:
     ``ref`` (a :class:`_Refiner`) sees their impostor scores (a building block, like
     :func:`count_blocks`)."""
-    for r0 in starts:
-        ref.visit(blocks, r0, blocks._product(r0, blocks._s[0]), chunk, use_table)
+    with _one_blas_thread():
+        for r0 in starts:
+            ref.visit(blocks, r0, blocks.product(r0), chunk, use_table)
 
 
-def _pass_one(blocks, top):
-    hist = np.zeros(_NBINS, np.int64)
-    tmp = np.empty(_NBINS, np.int32)
-    gvals, gids, ggrps = [], [], []
-    first = True
-    for r0, s in blocks:
-        v, i, g = _count_block(blocks, r0, s, hist, tmp)
-        gvals += v
-        gids += i
-        ggrps += g
-        if top is not None:
-            if first:
-                imp = tmp.astype(np.int64)
-                if v:
-                    imp -= np.bincount(_keys_of(np.concatenate(v)), minlength=_NBINS)
-                imp[0] = 0  # the key of entries that are not pairs
-                top.start(imp)
-                first = False
-            top.visit(blocks, r0, s)
-    return (hist, *_genuine_arrays(gvals, gids, ggrps))
+def _pass_one(blocks, top, workers=1):
+    """The counting pass over all blocks in ``workers`` threads; ``top`` (or None) ends holding
+    the highest impostor scores, merged from one copy per worker."""
+    workers = max(1, min(int(workers), len(blocks.block_starts())))
+    if top is None:
+        tops = [None] * workers
+    else:
+        tops = [top] if workers == 1 else [top.fresh() for _ in range(workers)]
+    parts = _in_workers(blocks, workers, lambda w, view, part: _count_part(view, part, tops[w]))
+    if top is not None and workers > 1:
+        top.absorb(tops)
+    return _merge_counts(parts)
+
+
+def _pass_two(blocks, ref, chunk, use_table, workers=1):
+    """The second pass over all blocks in ``workers`` threads, one copy of ``ref`` each, absorbed
+    into ``ref`` in worker order."""
+    workers = max(1, min(int(workers), len(blocks.block_starts())))
+    refs = [ref] if workers == 1 else [_Refiner(*ref.args) for _ in range(workers)]
+
+    def visit_all(w, view, part):
+        for r0 in part:
+            refs[w].visit(view, r0, view.product(r0), chunk, use_table)
+
+    _in_workers(blocks, workers, visit_all)
+    if workers > 1:
+        for copy_ in refs:
+            ref.absorb(copy_.export())
 
 
 class _Refiner:
@@ -1276,8 +1415,9 @@ def block_runner(runner):
     :func:`refine_blocks` over all blocks would (e.g. by :meth:`_Refiner.absorb` of the
     :meth:`_Refiner.export` of copies that each saw some blocks). ``tripletkit.distributed``
     runs them as Dask tasks. Every number of the report is the same as in this process when the
-    runner computes the same products (same rows, same blocks, same BLAS build and thread
-    count); ``passes`` is then always 2, since impostors are not kept across blocks.
+    runner computes the same products (same rows, same blocks, same BLAS build; the products
+    run with one BLAS thread everywhere); ``passes`` is then always 2, since impostors are not
+    kept across blocks.
     """
     token = _BLOCK_RUNNER.set(runner)
     try:
@@ -1288,7 +1428,7 @@ def block_runner(runner):
 
 def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR_TARGETS, bootstrap=200,
                      confidence=0.95, seed=0, curve_points=512, memory_budget=256 * 2**20, block_rows=None,
-                     exact_auc="auto", auc_budget=2**24, grid_per_decade=40):
+                     exact_auc="auto", auc_budget=2**24, grid_per_decade=40, workers=None):
     """Verification report over every pair of distinct rows, by blocked matrix product and counting.
 
     Parameters
@@ -1312,9 +1452,9 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     curve_points : int, default 512
         About how many ROC/DET points to report (even in log FMR and in FNMR).
     memory_budget : int, default 256 MiB
-        Bytes for the block buffers (13 bytes per score of a block: two products, one computed
-        while the other is counted, and a bin key) and for the impostor scores kept in the
-        first pass (16 bytes each).
+        Bytes for the block buffers (9 bytes per score of a block and worker: the product, a
+        bin key and a selection byte; blocks are sized for two workers) and, on top, for the
+        impostor scores kept in the first pass (16 bytes each, up to half the budget).
     block_rows : int, optional
         Rows per block, overriding ``memory_budget``.
     exact_auc : {"auto", True, False}, default "auto"
@@ -1329,6 +1469,11 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     grid_per_decade : int, default 40
         FMR levels per decade of the bootstrap's threshold grid (fewer when identities x levels
         would pass 8 million counts).
+    workers : int, optional
+        Threads that compute and count blocks side by side (default: one per CPU, at most as
+        many as ``memory_budget`` holds block buffers for: two with the default block size).
+        Every product runs with one BLAS thread, so no number of the report depends on
+        ``workers`` or on the BLAS thread count (``passes`` may: see below).
 
     Returns
     -------
@@ -1375,7 +1520,13 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     than nominal: about 0.90-0.94 for a nominal 0.95 with 100 identities in the simulation of
     tests/test_verification.py.
 
-    Memory is O(n*d + block*n + bins + genuine pairs + kept impostors + identities * grid).
+    Threads. Worker w computes and counts blocks w, w + workers, ... with buffers of its own and
+    keeps its own highest impostor scores; the histograms are summed and the kept scores merged
+    (complete from the highest of the workers' floors). Whether the kept scores reach low enough
+    for one pass can depend on that split, so ``passes`` can differ with ``workers``; the numbers
+    do not, since both ways give the exact scores of the same bins.
+
+    Memory is O(n*d + workers*block*n + bins + genuine pairs + kept impostors + identities * grid).
 
     References
     ----------
@@ -1414,12 +1565,14 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     top_share = max(resolvable) * (_window_factor(k_ident) if do_ci else 1.0) if resolvable else 0.0
     keep = int(math.ceil(1.1 * top_share * n_imp)) + 4096
     chunk = max(1 << 16, memory_budget // 64)
-    top = _TopImpostors(keep, n_imp, chunk) if 3 * 16 * keep <= _KEEP_SHARE * memory_budget else None
-
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
+    workers = default_workers(blocks, memory_budget) if workers is None else _check_workers(workers)
+    workers = min(workers, len(blocks.block_starts()))
+    # each worker keeps up to 3 * keep impostor scores of 16 bytes before it trims them
+    top = _TopImpostors(keep, n_imp, chunk) if workers * 3 * 16 * keep <= _KEEP_SHARE * memory_budget else None
     runner = _BLOCK_RUNNER.get()
     if runner is None:
-        hist_all, gval, gid, ggrp = _pass_one(blocks, top)
+        hist_all, gval, gid, ggrp = _pass_one(blocks, top, workers)
     else:
         top = None  # a runner's blocks are counted apart, so the refined bins come from a second pass
         hist_all, gval, gid, ggrp = runner.first_pass(blocks)
@@ -1516,8 +1669,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         if runner is not None:
             runner.second_pass(blocks, ref, chunk, use_table)
         else:
-            for r0, s in blocks:
-                ref.visit(blocks, r0, s, chunk, use_table)
+            _pass_two(blocks, ref, chunk, use_table, workers)
     cvals, ckeys, cgrp = ref.finish()
     cvals = cvals.astype(np.float64) / _SCORE_SCALE
 
