@@ -100,6 +100,16 @@ def test_same_seed_same_numbers_and_row_order_does_not_matter(tmp_path, rng):
     assert c["retrieval"]["map_at_r"] == pytest.approx(d["retrieval"]["map_at_r"], abs=1e-9)
 
 
+def test_threads_change_no_number_of_the_report(rng):
+    ids, names, emb, grp = _clustered(rng, identities=30, per=8)
+    one, two = (score((ids, names, emb, grp), config=dataclasses.replace(FAST, threads=t, block_rows=17), quiet=True)
+                for t in (1, 2))
+    for r in (one, two):
+        r["verification"].pop("passes")  # how the operating points were listed, not a number of the report
+        r["config"].pop("threads")
+    assert _strip_times(one) == _strip_times(two)
+
+
 def _fnmr_at_fmr_brute(gen, imp, target):
     """FNMR at FMR by the definition, trying every threshold: the lowest FNMR over the distinct
     scores t (and one above the top) with share(impostors >= t) <= target. Returns (fnmr, t)."""

@@ -82,6 +82,8 @@ class EvaluationConfig:
     plots: bool = _opt(True, "write PNG plots")
     block_rows: int = _opt(0, "rows per scoring block (0: sized from memory_mb)", low=0)
     memory_mb: int = _opt(512, "memory budget for scoring blocks, in MB", low=16)
+    threads: int = _opt(0, "threads that score blocks of pairs side by side (0: one per CPU within memory_mb); "
+                        "the report does not depend on it", low=0)
     seed: int = _opt(0, "random seed for bootstrap and k-means", low=0)
 
 

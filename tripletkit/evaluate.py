@@ -143,7 +143,7 @@ def _verification(table, cfg, pairs):
                   confidence=cfg.confidence, seed=cfg.seed)
     if pairs is None:
         return verify_all_pairs(table.embeddings, table.labels, memory_budget=cfg.memory_mb * 2**20,
-                                block_rows=cfg.block_rows or None, **common)
+                                block_rows=cfg.block_rows or None, workers=cfg.threads or None, **common)
     left, right, same = pairs
     return verify_pairs(table.embeddings, table.labels, left, right, same=same, **common)
 
@@ -225,7 +225,8 @@ def _guard_memory(table, cfg):
 
     sizes = table.identity_sizes()
     need = scoring_bytes(table.n, table.dim, cfg.block_rows, memory_mb=cfg.memory_mb,
-                         genuine_pairs=int((sizes * (sizes - 1) // 2).sum()), identities=table.n_identities)
+                         genuine_pairs=int((sizes * (sizes - 1) // 2).sum()), identities=table.n_identities,
+                         workers=cfg.threads or None)
     estimate_and_guard(f"scoring {table.n:,} x {table.dim} rows", max(0, need - table.n * table.dim * 4),
                        suggestion="lower --memory-mb or --block-rows, or score a fixed --pairs list")
 
