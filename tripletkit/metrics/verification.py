@@ -1743,7 +1743,7 @@ def _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, n
     ex_v = np.concatenate([gval[exact_bin[gkey]], cvals])
     ex_g = np.zeros(ex_v.size, np.int64)
     ex_g[: ex_v.size - cvals.size] = 1
-    order = np.argsort(ex_v, kind="stable")
+    order = np.argsort(ex_v)  # the order among equal values does not matter: they are summed
     ex_v, ex_g = ex_v[order], ex_g[order]
     first = np.r_[True, ex_v[1:] != ex_v[:-1]] if ex_v.size else np.empty(0, bool)
     starts = np.flatnonzero(first)
@@ -1751,6 +1751,16 @@ def _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, n
     ex_ic = np.diff(np.r_[starts, ex_v.size]) - ex_gc
     ex_v = ex_v[starts]
     t_v = _bin_value(tied)
-    at = np.searchsorted(t_v, ex_v)  # no exact value equals a tied one: their bins differ
-    return ScoreCounts(np.insert(t_v, at, ex_v), np.insert(gen_hist[tied], at, ex_gc),
-                       np.insert(imp_hist[tied], at, ex_ic))
+    # no exact value equals a tied one (their bins differ): merge the two sorted runs
+    pos = np.searchsorted(t_v, ex_v) + np.arange(ex_v.size)
+    m = t_v.size + ex_v.size
+    from_tied = np.ones(m, bool)
+    from_tied[pos] = False
+    merged = []
+    for tied_part, exact_part, dtype in ((t_v, ex_v, np.float64), (gen_hist[tied], ex_gc, np.int64),
+                                         (imp_hist[tied], ex_ic, np.int64)):
+        out = np.empty(m, dtype)
+        out[pos] = exact_part
+        out[from_tied] = tied_part
+        merged.append(out)
+    return ScoreCounts(*merged)
