@@ -1022,6 +1022,13 @@ class _Blocks:
             yield ss.reshape(-1)[sel[imp]], row[imp], col[imp]
 
 
+def _worker_keep(keep, workers):
+    """Highest impostor scores each of ``workers`` threads keeps when together they should keep
+    ``keep``: each sees about 1/workers of the pairs, so its floor settles at about the same
+    score; the quarter more covers workers whose blocks hold more high scores than others."""
+    return keep if workers <= 1 else int(math.ceil(1.25 * keep / workers))
+
+
 class _TopImpostors:
     """Keep, during the first pass, every impostor score in the bins at or above a rising floor.
 
@@ -1067,9 +1074,10 @@ class _TopImpostors:
             self.count = int(up.sum())
             self.floor = floor
 
-    def fresh(self):
-        """An empty instance with the same settings (one per worker thread)."""
-        return _TopImpostors(self.keep, 1, self.chunk)._with_share(self.share)
+    def fresh(self, workers):
+        """An empty instance for one of ``workers`` threads: the same share of its own impostors,
+        and a part of ``keep`` (see :func:`_worker_keep`)."""
+        return _TopImpostors(_worker_keep(self.keep, workers), 1, self.chunk)._with_share(self.share)
 
     def _with_share(self, share):
         self.share = share
@@ -1078,24 +1086,35 @@ class _TopImpostors:
     def absorb(self, parts):
         """Become the union of ``parts`` (instances that each saw some blocks), complete from the
         highest of their floors: every part holds every impostor of its blocks from its own floor
-        up, so the union restricted to the highest floor holds every impostor from there up."""
+        up, so the union restricted to the highest floor holds every impostor from there up.
+        The parts' arrays stay separate runs (see :meth:`parts`)."""
         self.floor = max([self.floor] + [p.floor for p in parts])
         self.vals, self.keys, self.rows, self.cols = [], [], [], []
         self.count = 0
         for p in parts:
-            kk, kv, kr, kc = p.result()
-            up = kk >= self.floor
-            self.keys.append(kk[up])
-            self.vals.append(kv[up])
-            self.rows.append(kr[up].astype(np.int32))
-            self.cols.append(kc[up].astype(np.int32))
-            self.count += int(up.sum())
+            for kk, kv, kr, kc in zip(p.keys, p.vals, p.rows, p.cols):
+                if p.floor < self.floor:
+                    up = kk >= self.floor
+                    kk, kv, kr, kc = kk[up], kv[up], kr[up], kc[up]
+                self.keys.append(kk)
+                self.vals.append(kv)
+                self.rows.append(kr)
+                self.cols.append(kc)
+                self.count += kk.size
+
+    def _joined(self):
+        if not self.vals:
+            return np.empty(0, np.int32), np.empty(0, np.float32), np.empty(0, np.int32), np.empty(0, np.int32)
+        return (np.concatenate(self.keys), np.concatenate(self.vals), np.concatenate(self.rows),
+                np.concatenate(self.cols))
+
+    def parts(self):
+        """The kept (keys, scaled values, rows, cols) as runs that can be processed apart."""
+        return list(zip(self.keys, self.vals, self.rows, self.cols))
 
     def result(self):
-        if not self.vals:
-            return np.empty(0, np.int32), np.empty(0, np.float32), np.empty(0, np.int64), np.empty(0, np.int64)
-        return (np.concatenate(self.keys), np.concatenate(self.vals),
-                np.concatenate(self.rows).astype(np.int64), np.concatenate(self.cols).astype(np.int64))
+        kk, kv, kr, kc = self._joined()
+        return kk, kv, kr.astype(np.int64), kc.astype(np.int64)
 
     def complete_from(self):
         """Lowest bin all of whose impostor scores were kept."""
@@ -1237,11 +1256,34 @@ def _pass_one(blocks, top, workers=1):
     if top is None:
         tops = [None] * workers
     else:
-        tops = [top] if workers == 1 else [top.fresh() for _ in range(workers)]
+        tops = [top] if workers == 1 else [top.fresh(workers) for _ in range(workers)]
     parts = _in_workers(blocks, workers, lambda w, view, part: _count_part(view, part, tops[w]))
     if top is not None and workers > 1:
         top.absorb(tops)
     return _merge_counts(parts)
+
+
+def _process_kept(blocks, ref, runs, workers):
+    """Let ``ref`` see the impostor scores kept in the first pass (runs of (keys, values, rows,
+    cols)): worker w processes runs w, w + workers, ... with a copy of ``ref``; the copies are
+    absorbed in worker order."""
+    runs = [r for r in runs if r[0].size]
+    workers = max(1, min(int(workers), len(runs)))
+    if workers == 1:
+        for kk, kv, kr, kc in runs:
+            ref.process(blocks, kk, kv, kr, kc)
+        return
+    refs = [_Refiner(*ref.args) for _ in range(workers)]
+
+    def work(w):
+        for run in runs[w::workers]:
+            refs[w].process(blocks, *run)
+
+    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify") as pool:
+        for done in [pool.submit(work, w) for w in range(workers)]:
+            done.result()
+    for r in refs:
+        ref.absorb(r.export())
 
 
 def _pass_two(blocks, ref, chunk, use_table, workers=1):
@@ -1568,8 +1610,9 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
     workers = default_workers(blocks, memory_budget) if workers is None else _check_workers(workers)
     workers = min(workers, len(blocks.block_starts()))
-    # each worker keeps up to 3 * keep impostor scores of 16 bytes before it trims them
-    top = _TopImpostors(keep, n_imp, chunk) if workers * 3 * 16 * keep <= _KEEP_SHARE * memory_budget else None
+    # each worker keeps up to 3 times its part of keep, impostor scores of 16 bytes, before it trims them
+    fits = workers * 3 * 16 * _worker_keep(keep, workers) <= _KEEP_SHARE * memory_budget
+    top = _TopImpostors(keep, n_imp, chunk) if fits else None
     runner = _BLOCK_RUNNER.get()
     if runner is None:
         hist_all, gval, gid, ggrp = _pass_one(blocks, top, workers)
@@ -1658,8 +1701,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     ref = _Refiner(code, kwin, cell_of, k_ident, 0 if bkeys is None else bkeys.size, gcell_of,
                    0 if gvalues is None else gvalues.size, n_gcells)
     if one_pass:
-        kk, kv, kr, kc = top.result()
-        ref.process(blocks, kk, kv, kr, kc)
+        _process_kept(blocks, ref, top.parts(), workers)
     else:
         # one comparison per score finds the candidates when few scores lie at or above the
         # lowest chosen bin; otherwise looking every score's bin up in a table is cheaper
