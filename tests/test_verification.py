@@ -163,13 +163,14 @@ def test_one_pass_and_two_passes_agree(rng, monkeypatch):
     # here); with no room to keep them a second pass lists the same bins
     x, labels = exact_table(rng, 500, 40, spread=8)
     groups = rng.choice(["bay", "spit"], size=len(x))
-    for auc_mode in (False, "auto"):
-        kw = dict(fmr_targets=[0.001, 0.01], bootstrap=40, block_rows=29, groups=groups, exact_auc=auc_mode)
+    for auc_mode, workers in ((False, 1), ("auto", 1), (False, 2), ("auto", 3)):
+        kw = dict(fmr_targets=[0.001, 0.01], bootstrap=40, block_rows=29, groups=groups, exact_auc=auc_mode,
+                  workers=workers)
         one = V.verify_all_pairs(x, labels, **kw)
         monkeypatch.setattr(V, "_KEEP_SHARE", 0.0)
         two = V.verify_all_pairs(x, labels, **kw)
         monkeypatch.undo()
-        assert one.pop("passes") == 1 and two.pop("passes") == 2
+        assert one.pop("passes") == 1 and two.pop("passes") == 2, workers
         assert one == two
 
 
