@@ -62,7 +62,7 @@ import math
 import os
 import threading
 import warnings
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import FIRST_EXCEPTION, ThreadPoolExecutor, wait
 from typing import NamedTuple
 
 import faiss
@@ -1178,6 +1178,12 @@ def _in_workers(blocks, workers, work):
         pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify")
         try:
             futures = [pool.submit(run, w, blocks.view()) for w in range(workers)]
+            wait(futures, return_when=FIRST_EXCEPTION)
+            if any(f.exception() is not None for f in futures if f.done()):
+                stop.set()
+                wait(futures)
+                raise next(f.exception() for f in futures
+                           if f.exception() is not None and not isinstance(f.exception(), _Stopped))
             return [f.result() for f in futures]
         except BaseException:
             stop.set()
