@@ -134,19 +134,27 @@ def test_format_bytes():
 def test_mining_bytes_hand_computed():
     # n=1000, d=10, 100 anchors per block, k=10, exact, memory_mb=16, 4 positives per anchor:
     # table 40,000 + flat index 40,000 + miner state 48,000 + block 100*10*64 = 64,000
-    # + widened searches 16 MiB / 4 = 4,194,304 + cosines 2 * min(16384, 4000) * 10 * 12 = 960,000
+    # + widened searches (or one dense block) 16 MiB / 4 = 4,194,304 + the dense path's transposed
+    # copy 40,000 + cosines 2 * min(16384, 4000) * 10 * 12 = 960,000
     assert mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16) == 40_000 + 40_000 + 48_000 + 64_000 \
-        + 4_194_304 + 960_000
+        + 4_194_304 + 40_000 + 960_000
     # 1,000 returned triplets add 80 bytes each
     assert mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16, triplets=1000) == \
         mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16) + 80_000
+    # n=100,000, d=8, 10 anchors per block: one dense row (216 bytes a cell with distance-weighted
+    # selection) against every row, 21,600,000, is more than the quarter of 16 MiB and counts instead:
+    # table 3,200,000 + index 3,200,000 + miner 4,800,000 + block 10*10*64 = 6,400 + dense row
+    # 21,600,000 + transposed copy 3,200,000 + cosines 2 * 87,381 * 8 * 12 = 16,777,152
+    assert mining_bytes(100_000, 8, 10, 10, "exact", memory_mb=16) == 3_200_000 + 3_200_000 + 4_800_000 \
+        + 6_400 + 21_600_000 + 3_200_000 + 16_777_152
 
 
 def test_mining_bytes_index_kinds_and_auto():
     n, d = 300_000, 128
     exact = mining_bytes(n, d, 0, 100, "exact")
-    # hnsw adds 2*M int32 links per node (+1/M for the upper levels): 300,000 * 256 * (33/32)
-    assert mining_bytes(n, d, 0, 100, "hnsw", hnsw_m=32) - exact == int(n * 2 * 32 * 4 * (1 + 1 / 32))
+    # hnsw adds 2*M int32 links per node (+1/M for the upper levels): 300,000 * 256 * (33/32), and
+    # does without the exact index's dense-path copy of the vectors (300,000 * 128 * 4)
+    assert mining_bytes(n, d, 0, 100, "hnsw", hnsw_m=32) - exact == int(n * 2 * 32 * 4 * (1 + 1 / 32)) - n * d * 4
     assert mining_bytes(n, d, 0, 100, "ivf") > exact
     # auto is exact below exact_below rows, ivf from there on
     assert mining_bytes(n, d, 0, 100, "auto", exact_below=n + 1) == exact

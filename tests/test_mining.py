@@ -13,8 +13,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from tripletkit import mining
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.config import MiningConfig, load_config
+from tripletkit.index import exact_cosine, exact_cosine_rows
 from tripletkit.mining import (REGIMES, TRIPLET_COLUMNS, _choose, _count_below, _floyd, _uniform,
                                duplicates_path, mine)
 from tripletkit.table import EmbeddingTable
@@ -116,16 +118,29 @@ def chosen(s):
     return res
 
 
+def force_path(monkeypatch, which):
+    """Pin the candidate search to the search path (top-k + widening) or the dense path."""
+    monkeypatch.setattr(mining, "_DENSE_SHARE", float("inf") if which == "search" else 0.0)
+
+
+@pytest.fixture(params=["search", "dense"])
+def path(request, monkeypatch):
+    """Run the test once on each candidate path of an exact index."""
+    force_path(monkeypatch, request.param)
+    return request.param
+
+
 # ---------------------------------------------------------------------------------------------
 # every triplet, every regime, both distances, every policy
 # ---------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("distance", ["squared", "euclidean"])
 @pytest.mark.parametrize("select", ["hardest", "random", "distance-weighted"])
-def test_every_triplet_matches_brute_force(seed, distance, select):
+def test_every_triplet_matches_brute_force(seed, distance, select, path):
     table = clustered(seed)
     margin = 0.3 if distance == "squared" else 0.15
     s = mine(table, regimes=ALL, select=select, distance=distance, margin=margin, negatives_per_positive=2,
              quiet=True, return_triplets=True, seed=3)
+    assert s.details["dense_rows"] == (table.n if path == "dense" else 0)
     check_every_triplet(table, s, margin, distance)
     counts = {r: int(np.sum(s.triplets["regime"] == REGIMES.index(r))) for r in ALL}
     assert s.regimes == counts
@@ -134,7 +149,7 @@ def test_every_triplet_matches_brute_force(seed, distance, select):
 
 
 @pytest.mark.parametrize("regimes", [("hard",), ("semi-hard",), ("easy",), ("semi-hard", "hard")])
-def test_each_regime_alone(seed, regimes):
+def test_each_regime_alone(seed, regimes, path):
     table = clustered(seed + 1)
     s = mine(table, regimes=regimes, quiet=True, return_triplets=True)
     check_every_triplet(table, s, 0.2, "squared")
@@ -147,7 +162,7 @@ def test_each_regime_alone(seed, regimes):
 # hardest = brute-force hardest; completeness; pairs without negatives
 # ---------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("distance", ["squared", "euclidean"])
-def test_hardest_equals_brute_force_and_counts_pairs_without(seed, distance):
+def test_hardest_equals_brute_force_and_counts_pairs_without(seed, distance, path):
     table = clustered(seed + 2, identities=20, per=8)
     margin = 0.25
     k = 3
@@ -167,7 +182,7 @@ def test_hardest_equals_brute_force_and_counts_pairs_without(seed, distance):
     assert 0 < without["hard"] < len(pairs)  # both kinds of pairs occur
 
 
-def test_completeness_random_semi_hard(seed):
+def test_completeness_random_semi_hard(seed, path):
     """Every pair with a semi-hard negative in brute force gets min(k, available) of them."""
     table = clustered(seed + 3)
     k = 2
@@ -186,8 +201,9 @@ def test_completeness_random_semi_hard(seed):
     assert s.pairs_without_negative["semi-hard"] == len(all_pairs(table)) - with_band
 
 
-def test_widening_finds_semi_hard_beyond_first_neighbours(seed):
+def test_widening_finds_semi_hard_beyond_first_neighbours(seed, monkeypatch):
     """Tight identities fill the first k neighbours; the semi-hard band lies beyond them."""
+    force_path(monkeypatch, "search")  # the widening of the search path is what is tested
     table = clustered(seed + 4, identities=24, per=12, spread=0.5, family=4, family_spread=0.6)
     D, _ = brute(table, "squared")
     k_first = 4
@@ -311,7 +327,7 @@ def _with_duplicates(seed):
     return EmbeddingTable.from_arrays(np.arange(labels.size), labels, X)
 
 
-def test_suspect_duplicates_reported_and_excluded(seed, tmp_path):
+def test_suspect_duplicates_reported_and_excluded(seed, tmp_path, path):
     table = _with_duplicates(seed)
     thr = 0.98
     _, C = brute(table, "squared")
@@ -394,7 +410,7 @@ def test_same_seed_same_bytes_other_seed_differs(seed, tmp_path):
 
 
 @pytest.mark.parametrize("select", ["random", "distance-weighted", "hardest"])
-def test_block_sizes_do_not_change_the_triplets(seed, tmp_path, select):
+def test_block_sizes_do_not_change_the_triplets(seed, tmp_path, select, path):
     """Blocked results equal one-shot results: the draws hang on (anchor, positive, row), not blocks."""
     table = clustered(seed + 12)
     ref = tmp_path / "ref.parquet"
@@ -406,6 +422,80 @@ def test_block_sizes_do_not_change_the_triplets(seed, tmp_path, select):
         got = pq.read_table(p)
         assert got.equals(want)  # values and schema; only the recorded options differ
         assert pq.ParquetFile(p).metadata.num_row_groups == pq.ParquetFile(ref).metadata.num_row_groups
+
+
+# ---------------------------------------------------------------------------------------------
+# the dense path (poorly separated tables) writes what the search path writes
+# ---------------------------------------------------------------------------------------------
+def _exact_ties(seed):
+    """30 rows repeated exactly under another label: distances 0 and other exact ties that only
+    the row order breaks, plus suspect duplicates."""
+    base = clustered(seed + 20, identities=15, per=6, spread=1.5)
+    rng = np.random.default_rng(seed)
+    src = rng.choice(base.n, 30, replace=False)
+    labels = np.concatenate([base.labels, (base.labels[src] + rng.integers(1, 15, 30)) % 15])
+    X = base.embeddings.astype(np.float64)
+    return EmbeddingTable.from_arrays(np.arange(labels.size), labels, np.vstack([X, X[src]]))
+
+
+@pytest.mark.parametrize("n, d", [(300, 24), (40_000, 3), (5, 1)])
+def test_exact_cosine_rows_equals_exact_cosine_bit_for_bit(rng, n, d):
+    """The dense twin: every (row, column) value identical to exact_cosine's, across its tiles
+    (whole rows when a row is short, column pieces of one row when it is long)."""
+    X = rng.standard_normal((n, d))
+    X = np.ascontiguousarray(X / np.linalg.norm(X, axis=1, keepdims=True), dtype=np.float32)
+    rows = rng.integers(0, n, 9)
+    C = exact_cosine_rows(X, rows)
+    want = exact_cosine(X, np.repeat(rows, n), np.tile(np.arange(n), rows.size)).reshape(rows.size, n)
+    assert C.dtype == np.float64 and C.shape == (rows.size, n)
+    assert np.array_equal(C, want)
+    assert np.array_equal(exact_cosine_rows(X, rows[3:4], np.ascontiguousarray(X.T)), want[3:4])
+    # and close to a float64 matrix product (a different summation order)
+    X64 = X.astype(np.float64)
+    np.testing.assert_allclose(C, X64[rows] @ X64.T, rtol=0, atol=1e-14)
+
+
+@pytest.mark.parametrize("distance", ["squared", "euclidean"])
+@pytest.mark.parametrize("select", ["hardest", "random", "distance-weighted"])
+@pytest.mark.parametrize("data", ["overlapping", "ties", "ties-excluded"])
+def test_dense_path_writes_the_same_bytes(seed, tmp_path, monkeypatch, select, distance, data):
+    table = clustered(seed + 21, identities=20, per=8, spread=1.5) if data == "overlapping" else _exact_ties(seed)
+    opts = dict(regimes=ALL, select=select, distance=distance, margin=0.3 if distance == "squared" else 0.15,
+                negatives_per_positive=3, seed=7, exclude_duplicates=data == "ties-excluded")
+    outs = {}
+    for which in ("search", "dense"):
+        force_path(monkeypatch, which)
+        out = tmp_path / f"{which}.parquet"
+        s = mine(table, out, quiet=True, **opts)
+        assert s.details["dense_rows"] == (table.n if which == "dense" else 0)
+        outs[which] = (out.read_bytes(), duplicates_path(out).read_bytes(), s.to_dict()["regimes"],
+                       s.pairs_without_negative, s.suspect_duplicates)
+    assert all(v > 0 for v in outs["search"][2].values())
+    if data != "overlapping":
+        assert outs["search"][4] >= 30
+    assert outs["dense"] == outs["search"]
+
+
+def test_poorly_separated_table_takes_the_dense_path(seed, tmp_path, monkeypatch):
+    # labels unrelated to the vectors: the extreme of a first epoch on a random projection
+    rng = np.random.default_rng(seed)
+    X, y = rng.standard_normal((600, 8)), rng.integers(0, 30, 600)
+    auto = mine((np.arange(600), y, X), tmp_path / "auto.parquet", quiet=True)
+    assert auto.details["dense_share"] >= mining._DENSE_SHARE
+    assert auto.details["dense_rows"] == 600
+    assert auto.details["widened_queries"] == 0
+    default = mining._DENSE_SHARE
+    force_path(monkeypatch, "search")
+    ref = mine((np.arange(600), y, X), tmp_path / "search.parquet", quiet=True)
+    assert ref.details["widened_queries"] > 500  # what the dense path saves: nearly every anchor widens
+    assert (tmp_path / "auto.parquet").read_bytes() == (tmp_path / "search.parquet").read_bytes()
+    # a well separated table stays on the search path; an approximate index always does
+    monkeypatch.setattr(mining, "_DENSE_SHARE", default)
+    tight = mine(clustered(seed, identities=60, per=10, spread=0.3, family=1), quiet=True)
+    assert tight.details["dense_share"] < default
+    assert tight.details["dense_rows"] == 0
+    ivf = mine((np.arange(600), y, X), index="ivf", quiet=True)
+    assert ivf.details["dense_share"] is None and ivf.details["dense_rows"] == 0
 
 
 def test_row_order_and_invariance_to_row_permutation(seed):

@@ -251,7 +251,11 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
         The table (float32), the index's own copy of the vectors (+ HNSW links, or IVF ids and
         centroids with the slack of lists that grow by doubling), the miner's per-row state, one
         search block of top-k results with their bookkeeping, a quarter of ``memory_mb`` for the
-        widened (range) searches of a block, the working set of the exact float64 cosines (a
+        widened (range) searches of a block or, on the dense path of a poorly separated table,
+        for one dense block (at least one row against every row: up to 216 bytes a cell with
+        distance-weighted selection), the dense path's transposed float32 copy of the table
+        (exact index: counted whichever path the run takes, which is chosen at run time), the working set of
+        the exact float64 cosines (a
         chunk of up to 16,384 pairs: both sides' rows as float32 and float64, so it grows with
         ``d``), and the returned triplets. Checked against the
         mining benchmark (bench/results/mining.log: 500,000 x 128 exact, about 800 MB above the
@@ -260,6 +264,7 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
     _check_sizes(n=n, d=d, block_rows=block_rows, k=k, hnsw_m=hnsw_m, ivf_nlist=ivf_nlist, memory_mb=memory_mb,
                  positives_per_anchor=positives_per_anchor, triplets=triplets)
     from .index import cosine_chunk_pairs, query_block_rows, resolve_kind
+    from .mining import _DENSE_WEIGHTED_CELL_BYTES
 
     kind = resolve_kind(index, n, exact_below)
     vectors = n * d * 4
@@ -277,11 +282,14 @@ def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, 
     # results of the widened (range) searches of a block: sized like the top-k block, a quarter
     # of the budget
     widened = memory_mb * _MB // 4
+    # the dense path uses the same quarter for one block, but a block has at least one row
+    widened = max(widened, _DENSE_WEIGHTED_CELL_BYTES * n)
+    transposed = vectors if kind == "exact" else 0
     # one chunk of tripletkit.index.exact_cosine: both sides as float32 and float64 (12 bytes
     # per value and side), at most 16 MiB
     cosines = 2 * min(cosine_chunk_pairs(d), n * positives_per_anchor) * d * 12
     return int(vectors + index_bytes + n * _MINER_BYTES_PER_ROW + block * kk * _BYTES_PER_NEIGHBOUR
-               + widened + cosines + triplets * _BYTES_PER_TRIPLET)
+               + widened + transposed + cosines + triplets * _BYTES_PER_TRIPLET)
 
 
 def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0, workers=None):

@@ -90,8 +90,8 @@ from tqdm import tqdm
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path, check_output
 from .config import MiningConfig, override
-from .index import (build_index, estimate_recall, exact_cosine, exact_scores, faiss_threads,
-                    query_block_rows, resolve_kind)
+from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
+                    faiss_threads, query_block_rows, resolve_kind)
 from .loss import REGIMES, regime_codes
 from .table import EmbeddingTable, as_table
 
@@ -111,6 +111,17 @@ _ROW_GROUP_ROWS = 1 << 16
 _EASY_ROUNDS = 6
 # Metadata keys are namespaced so they do not collide with other tools' keys.
 _META = "tripletkit."
+# Dense path (see _Miner._decide_dense): taken with an exact index when the sampled anchors' search
+# bands hold at least this share of the table on average. Measured crossover: see
+# docs/benchmarks_mining.md, section 4. A private knob: 0.0 forces the dense path, inf the search path.
+_DENSE_SHARE = 0.05
+# Anchors sampled (evenly spaced) to estimate the band share.
+_DENSE_SAMPLE = 256
+# Peak bytes per (row, column) cell of a dense block: float32 scores, float64 cosines and their
+# product buffer, distances, the int16 bins, their int64 sort order, masks. distance-weighted
+# also holds per-entry draw state (hash counters, keys, noise) for one pair slot at a time.
+_DENSE_CELL_BYTES = 56
+_DENSE_WEIGHTED_CELL_BYTES = 216
 
 
 # ---------------------------------------------------------------------------------------------
@@ -194,6 +205,16 @@ def _distance(cos, kind):
     """Distance from float64 cosines: squared ``max(0, 2 - 2 cos)`` or its square root."""
     sq = np.maximum(2.0 - 2.0 * cos, 0.0)
     return sq if kind == "squared" else np.sqrt(sq)
+
+
+def _distance_inplace(cos, kind):
+    """:func:`_distance` overwriting ``cos`` (float64): the same values bit for bit (-2 cos is exact)."""
+    cos *= -2.0
+    cos += 2.0
+    np.maximum(cos, 0.0, out=cos)
+    if kind != "squared":
+        np.sqrt(cos, out=cos)
+    return cos
 
 
 def _cosine_at(dist, kind):
@@ -429,7 +450,9 @@ class _Miner:
         self.dups = []
         self.widened = 0
         self.easy_scanned = 0
+        self.dense_rows = 0
         self._plan()
+        self._decide_dense()
 
     # -- anchors and positives ----------------------------------------------------------------
     def _plan(self):
@@ -478,6 +501,181 @@ class _Miner:
             c = _cosine_at(self.radius, self.kind) - 1e-12
             self.thresholds[a] = np.minimum(self.thresholds[a], c)
 
+    # -- dense path --------------------------------------------------------------------------------
+    def _decide_dense(self):
+        """Choose between the search path and the dense path for the whole run.
+
+        When an embedding separates its identities poorly (first epoch of training), most anchors'
+        search bands hold a large share of the table: the top-k search is widened for nearly every
+        anchor and the candidate lists approach rows x rows. The dense path then scores blocks of
+        anchors against every row instead (same exact float64 cosines, same membership rule, same
+        draws, so the same output) and never sorts the candidates. It is taken only with
+        ``index = "exact"`` (an approximate index would become exact, changing its output) and an
+        in-process index, when the sampled anchors' bands hold at least ``_DENSE_SHARE`` of the
+        table on average.
+        """
+        self.dense, self.dense_share = False, None
+        if (self.index.kind != "exact" or getattr(self.index, "plan", None) is not None
+                or not self.searched or not self.anchors.size or self.t.n_identities < 2):
+            return
+        m = min(_DENSE_SAMPLE, self.anchors.size)
+        take = self.anchors[np.unique(np.linspace(0, self.anchors.size - 1, m).astype(np.int64))]
+        low = self.thresholds[take] - self.slack
+        chunk = int(max(1, self.memory_mb * 2 ** 20 // 4 // (8 * self.n)))
+        inside = 0
+        for c in range(0, take.size, chunk):
+            S = exact_scores(self.X, self.X[take[c:c + chunk]])
+            inside += int(np.count_nonzero(S >= low[c:c + chunk, None]))
+        self.dense_share = inside / (take.size * self.n)
+        self.dense = self.dense_share >= _DENSE_SHARE
+        if self.dense:
+            self._XT = np.ascontiguousarray(self.X.T)
+
+    def dense_block_rows(self):
+        """Query rows per block of the dense path: a quarter of ``memory_mb`` for one block."""
+        per = _DENSE_WEIGHTED_CELL_BYTES if self.cfg.select == "distance-weighted" else _DENSE_CELL_BYTES
+        rows = self.memory_mb * 2 ** 20 // 4 // (per * self.n)
+        if self.cfg.block_rows:
+            rows = min(rows, self.cfg.block_rows)
+        return int(max(1, min(self.n, rows)))
+
+    def _dense_block(self, s, e, need_topk, picks):
+        """Rows [s, e) against every row: duplicates of every row, candidates of the anchors.
+
+        The same decisions as the search path: a faiss-free float32 product pre-selects the
+        duplicate candidates (score >= ``duplicate_cosine`` - slack) and float64 cosines decide;
+        the anchors' cosines with every row come from :func:`exact_cosine_rows`, bit for bit those
+        of :func:`exact_cosine`.
+        """
+        X, lab = self.X, self.lab
+        S = exact_scores(X, X[s:e])
+        low = self.dup_cos - self.slack
+        hit = np.flatnonzero(S.max(axis=1) >= low)  # most rows have no duplicate candidate
+        qi, cj = np.nonzero(S[hit] >= low)
+        del S
+        qr, cj = s + hit[qi].astype(np.int64), cj.astype(np.int64)
+        other = lab[cj] != lab[qr]
+        qr, cj = qr[other], cj[other]
+        if qr.size:
+            cos = exact_cosine(X, qr, cj)
+            dup = cos > self.dup_cos
+            if dup.any():
+                self.dups.append((np.minimum(qr[dup], cj[dup]), np.maximum(qr[dup], cj[dup]), cos[dup]))
+        topk = None
+        if need_topk:
+            k = int(min(max(1, self.cfg.neighbours), self.n))
+            D, I = self.index.search(X[s:e], k)
+            topk = (D, I, self.index._bound(D, I, k))
+        self.dense_rows += e - s
+        A = self.anchor_of_row[s:e]
+        A = A[A >= 0]
+        if A.size:
+            self._dense_anchors(A, picks)
+        return topk
+
+    def _dense_anchors(self, A, picks):
+        """Hard and semi-hard picks of anchors ``A`` (indices into ``self.anchors``), densely.
+
+        Every valid row (another identity; not a suspect duplicate when those are excluded) of an
+        anchor gets its float64 distance and a bin, ``trunc(min(d * scale, nb - 1))``, which is
+        monotone in d; rows are ordered by bin (a linear-time radix sort of int16 keys). A count
+        of rows with d < t is then the rows of the bins below t's bin plus an exact count in that
+        one bin, and the row at rank g in (distance, row) order is found in its bin by sorting only
+        that bin. These counts and ranks are those of the search path's sorted candidate list, so
+        :func:`_choose` draws the same offsets and picks the same rows.
+        """
+        n, lab = self.n, self.lab
+        rows = self.anchors[A]
+        m = rows.size
+        cos = exact_cosine_rows(self.X, rows, self._XT)
+        valid = lab[None, :] != lab[rows][:, None]
+        if self.cfg.exclude_duplicates:
+            valid &= ~(cos > self.dup_cos)
+        d = _distance_inplace(cos, self.kind)
+        del cos
+        npairs = self.plims[A + 1] - self.plims[A]
+        seg = np.repeat(np.arange(m), npairs)
+        P = np.repeat(self.plims[A], npairs) + _ragged(npairs)
+        if self.cfg.select == "distance-weighted":
+            self._dense_weighted(d, valid, seg, P, picks)
+            return
+        top = 4.0 if self.kind == "squared" else 2.0
+        nb = int(min(16384, max(16, n // 8)))
+        scale = nb / top
+
+        def bin_of(x):
+            return np.minimum(x * scale, nb - 1).astype(np.int64)
+
+        bins = np.minimum(d * scale, nb - 1).astype(np.int16)
+        bins[~valid] = nb  # a last bin for invalid rows: sorted after every valid one
+        del valid
+        order = np.argsort(bins, axis=1, kind="stable")  # radix sort; rows ascending within a bin
+        hist = np.empty((m, nb + 1), dtype=np.int64)
+        for i in range(m):
+            hist[i] = np.bincount(bins[i], minlength=nb + 1)
+        del bins
+        cum = np.zeros((m, nb + 2), dtype=np.int64)
+        np.cumsum(hist, axis=1, out=cum[:, 1:])
+
+        def bin_cells(i, b):
+            """Per request (row i, bin b): owner request, and column and distance of its cells."""
+            L = hist[i, b]
+            owner = np.repeat(np.arange(i.size), L)
+            pos = np.repeat(cum[i, b], L) + _ragged(L)
+            cols = order[i[owner], pos]
+            return owner, cols, d[i[owner], cols]
+
+        def n_below(t):
+            bt = bin_of(t)
+            owner, _, dv = bin_cells(seg, bt)
+            return cum[seg, bt] + np.bincount(owner[dv < t[owner]], minlength=seg.size)
+
+        d_ap = self.d_ap[P]
+        n_hard = n_below(d_ap)
+        n_band = n_below(d_ap + self.margin)
+        starts = (np.arange(m, dtype=np.int64)[:, None] * n + cum[:, :nb + 1]).ravel()
+        base = seg * n
+        for code in self.searched:
+            rlo, rhi = (base, base + n_hard) if code == _HARD else (base + n_hard, base + n_band)
+            self.without[REGIMES[code]] += int((rhi == rlo).sum())
+            owner, idx = self._select(P, rlo, rhi, None, None, code)
+            if not owner.size:
+                continue
+            # rank -> (row, bin) -> the cell at that rank inside its bin, in (distance, column) order
+            fb = np.searchsorted(starts, idx, side="right") - 1
+            i, b = fb // (nb + 1), fb % (nb + 1)
+            req, cols, dv = bin_cells(i, b)
+            srt = np.lexsort((cols, dv, req))
+            first = np.zeros(i.size + 1, dtype=np.int64)
+            np.cumsum(hist[i, b], out=first[1:])
+            at = srt[first[:-1] + (idx - starts[fb])]
+            picks.append((P[owner], cols[at], dv[at], np.full(owner.size, code, dtype=np.int8)))
+
+    def _dense_weighted(self, d, valid, seg, P, picks):
+        """distance-weighted picks from dense distances: one pair slot (j-th pair of each anchor)
+        at a time; the draw of an entry hangs on its row, not on its place in the list."""
+        slot = _ragged(np.bincount(seg, minlength=d.shape[0]))
+        d_ap = self.d_ap[P]
+        for code in self.searched:
+            lo_t = np.full(P.size, -np.inf) if code == _HARD else d_ap
+            hi_t = d_ap if code == _HARD else d_ap + self.margin
+            for j in range(int(slot.max()) + 1 if slot.size else 0):
+                w = np.flatnonzero(slot == j)
+                i = seg[w]
+                dj = d[i]
+                mask = valid[i] & (dj >= lo_t[w, None]) & (dj < hi_t[w, None])
+                oi, cols = np.nonzero(mask)
+                dv = dj[oi, cols]
+                del dj, mask
+                L = np.bincount(oi, minlength=w.size)
+                hi = np.cumsum(L)
+                lo = hi - L
+                self.without[REGIMES[code]] += int((L == 0).sum())
+                logw = distance_log_weights(_euclidean(dv, self.kind), self.dim, self.cfg.weighted_cutoff)
+                owner, idx = self._select(P[w], lo, hi, cols, logw, code)
+                if owner.size:
+                    picks.append((P[w][owner], cols[idx], dv[idx], np.full(owner.size, code, dtype=np.int8)))
+
     # -- recall of an approximate index ---------------------------------------------------------
     def recall(self):
         """Fraction of the exact hard and semi-hard candidates of sampled anchors the index finds."""
@@ -506,12 +704,15 @@ class _Miner:
         need_topk = _EASY in self.codes and cfg.select == "hardest"
         picks = []
         topk = None
-        for sel, nb in self.index.within_pieces(self.X[s:e], self.thresholds[s:e], cfg.neighbours,
-                                                memory_mb=self.memory_mb, keep_topk=need_topk):
-            if nb.topk is not None:
-                topk = nb.topk
-            self.widened += nb.widened
-            self._piece(s, sel, nb, picks)
+        if self.dense:
+            topk = self._dense_block(s, e, need_topk, picks)
+        else:
+            for sel, nb in self.index.within_pieces(self.X[s:e], self.thresholds[s:e], cfg.neighbours,
+                                                    memory_mb=self.memory_mb, keep_topk=need_topk):
+                if nb.topk is not None:
+                    topk = nb.topk
+                self.widened += nb.widened
+                self._piece(s, sel, nb, picks)
         a0, a1 = np.searchsorted(self.anchors, [s, e])
         P = np.arange(self.plims[a0], self.plims[a1], dtype=np.int64)
         if _EASY in self.codes and P.size:
@@ -1031,7 +1232,10 @@ def _mine_table(table, cfg, tmp_out, tmp_dup, *, quiet=False, return_triplets=Fa
             writer = (writer_class or _TripletWriter)(tmp_out, table, meta)
             stack.callback(_close_quietly, writer)
             n = table.n
-            block = query_block_rows(n, min(cfg.neighbours, n), cfg.memory_mb, cfg.block_rows)
+            if miner.dense:
+                block = miner.dense_block_rows()
+            else:
+                block = query_block_rows(n, min(cfg.neighbours, n), cfg.memory_mb, cfg.block_rows)
             plan = getattr(index, "plan", None)
             if plan is not None:  # an index that searches ahead of the blocks (tripletkit.distributed)
                 plan(miner.X, miner.thresholds, block)
@@ -1069,7 +1273,8 @@ def _mine_table(table, cfg, tmp_out, tmp_dup, *, quiet=False, return_triplets=Fa
         triplets=_gather(collected, table) if return_triplets else None,
         details={"pairs": int(miner.pair_a.size), "widened_queries": miner.widened,
                  "easy_scanned_pairs": miner.easy_scanned, "index_params": index.params,
-                 "recall_relevant": relevant},
+                 "recall_relevant": relevant, "dense_rows": miner.dense_rows,
+                 "dense_share": miner.dense_share},
     )
     return summary
 
