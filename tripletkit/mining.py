@@ -528,8 +528,8 @@ class _Miner:
             inside += int(np.count_nonzero(S >= low[c:c + chunk, None]))
         self.dense_share = inside / (take.size * self.n)
         self.dense = self.dense_share >= _DENSE_SHARE
-        if self.dense:
-            self._XT = np.ascontiguousarray(self.X.T)
+        if self.dense and self.cfg.select == "distance-weighted":
+            self._XT = np.ascontiguousarray(self.X.T)  # for exact_cosine_rows
 
     def dense_block_rows(self):
         """Query rows per block of the dense path: a quarter of ``memory_mb`` for one block."""
@@ -552,15 +552,16 @@ class _Miner:
         low = self.dup_cos - self.slack
         hit = np.flatnonzero(S.max(axis=1) >= low)  # most rows have no duplicate candidate
         qi, cj = np.nonzero(S[hit] >= low)
-        del S
         qr, cj = s + hit[qi].astype(np.int64), cj.astype(np.int64)
         other = lab[cj] != lab[qr]
         qr, cj = qr[other], cj[other]
+        dup_q, dup_c = qr[:0], cj[:0]
         if qr.size:
             cos = exact_cosine(X, qr, cj)
             dup = cos > self.dup_cos
             if dup.any():
-                self.dups.append((np.minimum(qr[dup], cj[dup]), np.maximum(qr[dup], cj[dup]), cos[dup]))
+                dup_q, dup_c = qr[dup], cj[dup]
+                self.dups.append((np.minimum(dup_q, dup_c), np.maximum(dup_q, dup_c), cos[dup]))
         topk = None
         if need_topk:
             k = int(min(max(1, self.cfg.neighbours), self.n))
@@ -568,71 +569,99 @@ class _Miner:
             topk = (D, I, self.index._bound(D, I, k))
         self.dense_rows += e - s
         A = self.anchor_of_row[s:e]
-        A = A[A >= 0]
-        if A.size:
-            self._dense_anchors(A, picks)
+        local = np.flatnonzero(A >= 0)
+        A = A[local]
+        if not A.size:
+            return topk
+        if self.cfg.select == "distance-weighted":
+            del S
+            self._dense_weighted(A, picks)
+        else:
+            S = S[local] if local.size < S.shape[0] else S
+            self._dense_ranked(A, S, dup_q, dup_c, picks)
         return topk
 
-    def _dense_anchors(self, A, picks):
-        """Hard and semi-hard picks of anchors ``A`` (indices into ``self.anchors``), densely.
+    def _pairs_of(self, A):
+        """Pairs of anchors ``A``: (anchor number within A per pair, pair positions)."""
+        npairs = self.plims[A + 1] - self.plims[A]
+        seg = np.repeat(np.arange(A.size), npairs)
+        return seg, np.repeat(self.plims[A], npairs) + _ragged(npairs)
 
-        Every valid row (another identity; not a suspect duplicate when those are excluded) of an
-        anchor gets its float64 distance and a bin, ``trunc(min(d * scale, nb - 1))``, which is
-        monotone in d; rows are ordered by bin (a linear-time radix sort of int16 keys). A count
-        of rows with d < t is then the rows of the bins below t's bin plus an exact count in that
-        one bin, and the row at rank g in (distance, row) order is found in its bin by sorting only
-        that bin. These counts and ranks are those of the search path's sorted candidate list, so
-        :func:`_choose` draws the same offsets and picks the same rows.
+    def _dense_bins(self):
+        """Bins of the dense path: (count nb, scale) with nb bins of 1 - cosine over [0, 2]."""
+        # Approximate bin values are off by at most a quarter of a bin: the float32 score's error
+        # (slack), the float32 rounding of 1 - score and of the product with the scale, and the
+        # float64 rounding of a distance threshold; with windows of three bins that is what keeps
+        # every cell outside a window on its side of the decision (see _dense_ranked).
+        err = self.slack + 3e-7 + 1e-12
+        cap = int(2 * 0.25 / err)
+        nb = int(max(2, min(16384, max(16, self.n // 2), cap)))
+        return nb, nb / 2.0
+
+    def _dense_ranked(self, A, S, dup_q, dup_c, picks):
+        """Hard and semi-hard picks of anchors ``A`` (indices into ``self.anchors``) for ``hardest``
+        and ``random``, from their float32 scores ``S`` against every row.
+
+        Every row of an anchor gets a bin from its float32 score, ``trunc(min((1 - s) * scale,
+        nb - 1))``; rows of the anchor's identity (and suspect duplicates when those are excluded)
+        go to a last bin ``nb``. A bin value is off the exact one, (1 - cos) * scale, by at most a
+        quarter of a bin (:meth:`_dense_bins`). Hence for a distance threshold t in bin b_t every
+        row in a bin <= b_t - 2 is closer than t and every row in a bin >= b_t + 2 is not: the
+        count of rows with d < t is the first count plus an exact count over the three bins
+        b_t - 1 .. b_t + 1. Likewise the row at rank g in (distance, row) order among the valid
+        rows, whose bin holds rank g, lies in the three bins around it, and every row outside
+        them ranks wholly before or after it: sorting those three bins by exact distance finds it.
+        Exact distances (float64 cosines of :func:`exact_cosine`) are computed only for the rows
+        of these windows. The counts and ranks are those of the search path's sorted candidate
+        list, so :func:`_choose` draws the same offsets and picks the same rows; the rows are
+        sorted by bin only (a linear-time radix sort of int16 keys), never by distance.
         """
         n, lab = self.n, self.lab
         rows = self.anchors[A]
         m = rows.size
-        cos = exact_cosine_rows(self.X, rows, self._XT)
-        valid = lab[None, :] != lab[rows][:, None]
-        if self.cfg.exclude_duplicates:
-            valid &= ~(cos > self.dup_cos)
-        d = _distance_inplace(cos, self.kind)
-        del cos
-        npairs = self.plims[A + 1] - self.plims[A]
-        seg = np.repeat(np.arange(m), npairs)
-        P = np.repeat(self.plims[A], npairs) + _ragged(npairs)
-        if self.cfg.select == "distance-weighted":
-            self._dense_weighted(d, valid, seg, P, picks)
-            return
-        top = 4.0 if self.kind == "squared" else 2.0
-        nb = int(min(16384, max(16, n // 8)))
-        scale = nb / top
-
-        def bin_of(x):
-            return np.minimum(x * scale, nb - 1).astype(np.int64)
-
-        bins = np.minimum(d * scale, nb - 1).astype(np.int16)
-        bins[~valid] = nb  # a last bin for invalid rows: sorted after every valid one
-        del valid
+        nb, scale = self._dense_bins()
+        v = np.subtract(np.float32(1.0), S, dtype=np.float32)
+        del S
+        v *= np.float32(scale)
+        np.minimum(v, np.float32(nb - 1), out=v)
+        bins = v.astype(np.int16)
+        del v
+        bins[lab[None, :] == lab[rows][:, None]] = nb  # sorted after every valid row
+        if self.cfg.exclude_duplicates and dup_q.size:
+            at = self.anchor_of_row[dup_q]
+            where = np.searchsorted(A, at)
+            ok = (at >= 0) & (where < A.size)
+            ok[ok] = A[where[ok]] == at[ok]
+            bins[where[ok], dup_c[ok]] = nb
         order = np.argsort(bins, axis=1, kind="stable")  # radix sort; rows ascending within a bin
-        hist = np.empty((m, nb + 1), dtype=np.int64)
-        for i in range(m):
-            hist[i] = np.bincount(bins[i], minlength=nb + 1)
-        del bins
         cum = np.zeros((m, nb + 2), dtype=np.int64)
-        np.cumsum(hist, axis=1, out=cum[:, 1:])
+        for i in range(m):
+            np.cumsum(np.bincount(bins[i], minlength=nb + 1), out=cum[i, 1:])
+        del bins
 
-        def bin_cells(i, b):
-            """Per request (row i, bin b): owner request, and column and distance of its cells."""
-            L = hist[i, b]
+        def window(i, b):
+            """Rows of bins b-1 .. b+1 of anchor i (per request): owner, columns, exact distances,
+            and how many valid rows lie in the bins below the window."""
+            lo = np.clip(b - 1, 0, nb)
+            hi = np.clip(b + 2, 0, nb)
+            start = cum[i, lo]
+            L = cum[i, hi] - start
             owner = np.repeat(np.arange(i.size), L)
-            pos = np.repeat(cum[i, b], L) + _ragged(L)
-            cols = order[i[owner], pos]
-            return owner, cols, d[i[owner], cols]
+            cols = order[i[owner], np.repeat(start, L) + _ragged(L)]
+            dv = _distance(exact_cosine(self.X, rows[i[owner]], cols), self.kind)
+            return owner, cols, dv, start
 
-        def n_below(t):
-            bt = bin_of(t)
-            owner, _, dv = bin_cells(seg, bt)
-            return cum[seg, bt] + np.bincount(owner[dv < t[owner]], minlength=seg.size)
+        def bin_of_distance(t):
+            return np.floor((t / 2.0 if self.kind == "squared" else t * t / 2.0) * scale).astype(np.int64)
 
+        def n_below(seg, t):
+            owner, _, dv, start = window(seg, bin_of_distance(t))
+            return start + np.bincount(owner[dv < t[owner]], minlength=seg.size)
+
+        seg, P = self._pairs_of(A)
         d_ap = self.d_ap[P]
-        n_hard = n_below(d_ap)
-        n_band = n_below(d_ap + self.margin)
+        n_hard = n_below(seg, d_ap)
+        n_band = n_below(seg, d_ap + self.margin)
         starts = (np.arange(m, dtype=np.int64)[:, None] * n + cum[:, :nb + 1]).ravel()
         base = seg * n
         for code in self.searched:
@@ -641,19 +670,29 @@ class _Miner:
             owner, idx = self._select(P, rlo, rhi, None, None, code)
             if not owner.size:
                 continue
-            # rank -> (row, bin) -> the cell at that rank inside its bin, in (distance, column) order
+            # rank -> (anchor, bin holding it) -> its window, sorted by (distance, column)
             fb = np.searchsorted(starts, idx, side="right") - 1
             i, b = fb // (nb + 1), fb % (nb + 1)
-            req, cols, dv = bin_cells(i, b)
+            req, cols, dv, below = window(i, b)
             srt = np.lexsort((cols, dv, req))
-            first = np.zeros(i.size + 1, dtype=np.int64)
-            np.cumsum(hist[i, b], out=first[1:])
-            at = srt[first[:-1] + (idx - starts[fb])]
+            first = np.searchsorted(req[srt], np.arange(i.size), side="left")
+            at = srt[first + (idx - i * n - below)]
             picks.append((P[owner], cols[at], dv[at], np.full(owner.size, code, dtype=np.int8)))
 
-    def _dense_weighted(self, d, valid, seg, P, picks):
-        """distance-weighted picks from dense distances: one pair slot (j-th pair of each anchor)
-        at a time; the draw of an entry hangs on its row, not on its place in the list."""
+    def _dense_weighted(self, A, picks):
+        """distance-weighted picks of anchors ``A``: every entry of a band needs its exact weight,
+        so the anchors' float64 cosines with every row come from :func:`exact_cosine_rows` (bit
+        for bit those of :func:`exact_cosine`); one pair slot (j-th pair of each anchor) at a
+        time, and the draw of an entry hangs on its row, not on its place in the list."""
+        lab = self.lab
+        rows = self.anchors[A]
+        cos = exact_cosine_rows(self.X, rows, self._XT)
+        valid = lab[None, :] != lab[rows][:, None]
+        if self.cfg.exclude_duplicates:
+            valid &= ~(cos > self.dup_cos)
+        d = _distance_inplace(cos, self.kind)
+        del cos
+        seg, P = self._pairs_of(A)
         slot = _ragged(np.bincount(seg, minlength=d.shape[0]))
         d_ap = self.d_ap[P]
         for code in self.searched:
