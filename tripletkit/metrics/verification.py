@@ -1521,7 +1521,9 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
         Threads that compute and count blocks side by side (default: one per CPU, at most as
         many as ``memory_budget`` holds block buffers for: two with the default block size).
         Every product runs with one BLAS thread, so no number of the report depends on
-        ``workers`` or on the BLAS thread count (``passes`` may: see below).
+        ``workers`` or on the BLAS thread count (``passes`` may: see below). The BLAS limit is
+        process-wide (``threadpoolctl``) while the passes run, so other threads of the caller
+        that multiply matrices meanwhile run with one BLAS thread too.
 
     Returns
     -------
