@@ -17,8 +17,8 @@ from tripletkit import mining
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.config import MiningConfig, load_config
 from tripletkit.index import exact_cosine, exact_cosine_rows
-from tripletkit.mining import (REGIMES, TRIPLET_COLUMNS, _choose, _count_below, _floyd, _uniform,
-                               duplicates_path, mine)
+from tripletkit.mining import (REGIMES, TRIPLET_COLUMNS, _choose, _count_below, _floyd, _top_in_groups,
+                               _uniform, duplicates_path, mine)
 from tripletkit.table import EmbeddingTable
 
 ALL = ("easy", "semi-hard", "hard")
@@ -712,6 +712,23 @@ def test_hardest_and_random_choose_inside_ranges():
     owner, idx = _choose("random", lo, hi, 2, (np.arange(3), 0, 1), (np.uint64(1), np.uint64(2)))
     assert owner.tolist() == [0, 0, 2, 2]
     assert np.all((idx >= lo[owner]) & (idx < hi[owner]))
+
+
+@pytest.mark.parametrize("k", [1, 3, 40])
+def test_top_in_groups_equals_a_full_sort(rng, k):
+    """The k best of each group by (-score, row) equal the head of a lexsort of every entry,
+    with tied scores (rounded values, -0.0 against 0.0), -inf entries and groups shorter than k."""
+    sizes = rng.integers(1, 30, 200)
+    groups = np.repeat(np.arange(sizes.size), sizes)
+    rows = np.concatenate([rng.permutation(1000)[:m] for m in sizes])
+    score = np.round(rng.standard_normal(groups.size), 1)
+    score[rng.random(groups.size) < 0.05] = -0.0
+    score[rng.random(groups.size) < 0.05] = -np.inf
+    order = np.lexsort((rows, -score, groups))
+    order = order[np.isfinite(score[order])]
+    want = order[np.concatenate([np.arange(m) for m in np.bincount(groups[order], minlength=sizes.size)]) < k]
+    assert np.array_equal(_top_in_groups(groups, score, rows, k), want)
+    assert _top_in_groups(groups[:0], score[:0], rows[:0], k).size == 0
 
 
 def test_count_below_matches_searchsorted(rng):

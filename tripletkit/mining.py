@@ -31,6 +31,18 @@ the float64 cosines. With ``index = "exact"`` the candidate sets are exactly tho
 over all rows. Every row is also a query at the duplicate threshold, so the same search finds the
 suspect duplicates.
 
+Dense path. On a poorly separated embedding (the first epoch of training, a random projection) most
+anchors' bands hold a large share of the table: nearly every anchor widens and the candidate lists
+approach rows x rows, whose sorting then dominates. With ``index = "exact"``, when anchors sampled
+evenly hold on average at least 3% of the table above their threshold, the whole run takes a dense
+path instead: blocks of rows (sized from ``memory_mb``) scored against every row with one float32
+matrix product, each anchor's rows ordered by a bin of their score (a radix sort), and exact
+float64 cosines computed only where a decision needs them (``hardest``, ``random``) or for every
+row (``distance-weighted``, whose weights need them). Membership is decided by the same float64
+cosines and the same counts, ranks and draws reach :func:`_choose`, so the output bytes are those
+of the search path (tests/test_mining.py checks both paths against each other and a brute force).
+``summary.details`` records ``dense_share`` (the sampled share) and ``dense_rows``.
+
 Easy negatives are plentiful and far away, so they are not searched: ``random`` draws them by
 rejection sampling from the rows of other identities (up to six rounds of proposals, then an exact
 scan of all rows for the pairs still short); ``hardest`` takes the nearest easy ones from the
@@ -112,9 +124,10 @@ _EASY_ROUNDS = 6
 # Metadata keys are namespaced so they do not collide with other tools' keys.
 _META = "tripletkit."
 # Dense path (see _Miner._decide_dense): taken with an exact index when the sampled anchors' search
-# bands hold at least this share of the table on average. Measured crossover: see
-# docs/benchmarks_mining.md, section 4. A private knob: 0.0 forces the dense path, inf the search path.
-_DENSE_SHARE = 0.05
+# bands hold at least this share of the table on average. The two paths cost the same at about
+# 2% (d = 16) and 1% (d = 128) (docs/benchmarks_mining.md, section 4); 3% takes the dense path
+# only where it is clearly faster. A private knob: 0.0 forces the dense path, inf the search path.
+_DENSE_SHARE = 0.03
 # Anchors sampled (evenly spaced) to estimate the band share.
 _DENSE_SAMPLE = 256
 # Peak bytes per (row, column) cell of a dense block: float32 scores, float64 cosines and their
@@ -162,7 +175,10 @@ class MiningSummary:
         ``negative_label`` (original values), ``d_ap``, ``d_an``, ``violation`` (float32) and
         ``regime`` (int8 codes into :data:`REGIMES`).
     details : dict
-        Extra counters (pairs, widened queries, easy scans, index parameters); not in ``to_dict``.
+        Extra counters (pairs, widened queries, easy scans, index parameters, and for the dense
+        path ``dense_share``, the sampled share of the table inside the anchors' bands (None when
+        not sampled: approximate index, nothing searched), and ``dense_rows``, the query rows it
+        mined); not in ``to_dict``.
     """
 
     n_triplets: int
@@ -401,10 +417,39 @@ def _choose(policy, lo, hi, k, counters, keys, rows=None, logw=None):
     score = logw[idx] + _gumbel(_uniform(keys[1], *ctr, rows[idx]))
     ok = np.isfinite(score)  # weight 0 (log -inf) is never drawn
     owner, idx, score = owner[ok], idx[ok], score[ok]
-    order = np.lexsort((rows[idx], -score, owner))
-    owner, idx = owner[order], idx[order]
-    first = _rank_in_groups(owner) < k
-    return owner[first], idx[first]
+    pick = _top_in_groups(owner, score, rows[idx], k)
+    return owner[pick], idx[pick]
+
+
+def _top_in_groups(groups, score, rows, k):
+    """Positions of the ``k`` entries of largest ``score`` (ties: smallest row) of each run of equal
+    ``groups`` (sorted), in (group, -score, row) order: what a lexsort by (group, -score, row)
+    would put first, found with ``k`` passes of a per-group maximum instead of a sort of every
+    entry. Rows are distinct within a group (candidate rows of one anchor)."""
+    n = groups.size
+    if not n:
+        return np.zeros(0, dtype=np.int64)
+    first = np.ones(n, dtype=bool)
+    first[1:] = groups[1:] != groups[:-1]
+    starts = np.flatnonzero(first)
+    member = np.cumsum(first) - 1  # group number of each entry
+    live = score.astype(np.float64, copy=True)
+    big = np.iinfo(np.int64).max
+    found, steps = [], []
+    for step in range(k):
+        top = np.maximum.reduceat(live, starts)
+        best = (live == top[member]) & np.isfinite(top[member])
+        if not best.any():
+            break
+        low = np.minimum.reduceat(np.where(best, rows, big), starts)
+        hit = np.flatnonzero(best & (rows == low[member]))
+        live[hit] = -np.inf
+        found.append(hit)
+        steps.append(np.full(hit.size, step, dtype=np.int64))
+    if not found:
+        return np.zeros(0, dtype=np.int64)
+    hit, step = np.concatenate(found), np.concatenate(steps)
+    return hit[np.lexsort((step, groups[hit]))]
 
 
 def duplicates_path(out):
