@@ -14,6 +14,16 @@ Three parts, each path in its own subprocess so that its peak memory (``ru_maxrs
    Targets: >= 4x, recall >= 0.95.
 3. ``scaling``: exact and approximate mining time for each size of ``--sizes``.
 
+``--case first-epoch`` (off by default; it replaces the three parts) times exact mining of a poorly
+separated table, the first epoch of ``tripletkit.head.fit_head``: the clustered features of
+bench/bench_head.py (``_synthetic``) through a freshly initialised projection head (a random
+projection to DIM, 25 rows per identity), mined with the defaults. The miner's dense path (chosen
+automatically on such a table) runs against the search path it replaces (kept reachable by the
+private knob ``tripletkit.mining._DENSE_SHARE = inf``), alternated ``--repeat`` times; the two
+outputs must be byte-identical (their SHA-256 is compared)::
+
+    python bench/bench_mining.py --case first-epoch --rows 10000 --dim 16 --repeat 2
+
 Peak memory is the kernel's high-water mark of the child, reset after the synthetic table is built
 (``/proc/self/clear_refs``), so it covers the measured call with the table resident; the whole
 process peak (data generation included) is kept in the JSON too.
@@ -31,6 +41,7 @@ Example (about 30 minutes on 2 cores)::
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import resource
@@ -72,6 +83,18 @@ def make_table(rows, identities, dim, seed=0):
     return table
 
 
+def make_first_epoch_table(rows, identities, dim, seed=0):
+    """The first epoch of ``fit_head`` on bench_head.py's synthetic features: a random projection."""
+    from bench_head import _synthetic  # bench/ is the script's folder, so it is on sys.path
+
+    from tripletkit.head import ProjectionHead
+    from tripletkit.table import EmbeddingTable
+
+    labels, F = _synthetic(rows, 128, identities, seed=seed)
+    Z = ProjectionHead.initialise(F, dim=dim, seed=seed).transform(F)
+    return EmbeddingTable.from_arrays(np.arange(labels.size, dtype=np.int64), labels, Z)
+
+
 def _reset_peak():
     """Reset the kernel's peak-RSS mark of this process (Linux >= 4.0); False if unsupported."""
     try:
@@ -97,7 +120,10 @@ def _peak_mb():
 
 def child(args):
     """Run one measured path and print one JSON line."""
-    table = make_table(args.rows, args.identities, args.dim, args.seed)
+    if args.first_epoch:
+        table = make_first_epoch_table(args.rows, args.identities, args.dim, args.seed)
+    else:
+        table = make_table(args.rows, args.identities, args.dim, args.seed)
     matrix_mb = table.embeddings.nbytes / 2 ** 20
     res = {"path": args.child, "rows": table.n, "dim": table.dim, "identities": table.n_identities,
            "matrix_mb": matrix_mb, "generation_peak_mb": _peak_mb()}
@@ -115,8 +141,11 @@ def child(args):
             D[s:s + args.block], I[s:s + args.block] = index.search(table.embeddings[s:s + args.block], args.k)
         res["seconds"] = time.perf_counter() - t0
     else:
+        from tripletkit import mining
         from tripletkit.mining import mine
 
+        if args.child == "mine-search":
+            mining._DENSE_SHARE = float("inf")  # the search path (top-k + widening) for every table
         with tempfile.TemporaryDirectory(dir=args.tmp) as tmp:
             t0 = time.perf_counter()
             s = mine(table, os.path.join(tmp, "triplets.parquet"), index=args.index, quiet=True,
@@ -124,6 +153,8 @@ def child(args):
                      hnsw_ef_search=args.hnsw_ef_search)
             res["seconds"] = time.perf_counter() - t0
             res["output_mb"] = os.path.getsize(os.path.join(tmp, "triplets.parquet")) / 2 ** 20
+            with open(os.path.join(tmp, "triplets.parquet"), "rb") as f:
+                res["sha256"] = hashlib.sha256(f.read()).hexdigest()
         res["summary"] = s.to_dict()
         res["details"] = s.details
     res["process_peak_mb"] = _peak_mb()
@@ -146,6 +177,8 @@ def run(path, rows, identities, args, spec="exact"):
     cmd = [sys.executable, os.path.abspath(__file__), "--child", path, "--rows", str(rows), "--identities",
            str(identities), "--dim", str(args.dim), "--k", str(args.k), "--index", index, "--seed", str(args.seed),
            "--block", str(args.block), "--tmp", args.tmp, "--ivf-nprobe", str(nprobe), "--hnsw-ef-search", str(ef)]
+    if args.case == "first-epoch":
+        cmd.append("--first-epoch")
     out = subprocess.run(cmd, check=True, capture_output=True, text=True)
     res = json.loads(out.stdout.strip().splitlines()[-1])
     res["spec"] = spec
@@ -218,9 +251,47 @@ def part_scaling(args, results, cache):
     results["scaling"] = {"approx": spec, "rows": rows_out}
 
 
+def part_first_epoch(args, results):
+    rows, ids = args.rows, args.identities
+    print(f"[first-epoch] {rows} x {args.dim} (random projection of 128-d features), {ids} identities, "
+          f"dense path vs search path, repeat {args.repeat}", flush=True)
+    load = [os.getloadavg()[0]]
+    runs = []
+    for _ in range(args.repeat):
+        runs.append((run("mine-search", rows, ids, args), run("mine", rows, ids, args)))
+        load.append(os.getloadavg()[0])
+    old = [r[0]["seconds"] for r in runs]
+    new = [r[1]["seconds"] for r in runs]
+    same = all(r[0]["sha256"] == r[1]["sha256"] for r in runs)
+    d_old, d_new = runs[-1][0]["details"], runs[-1][1]["details"]
+    results["first_epoch"] = {
+        "rows": runs[-1][1]["rows"], "dim": runs[-1][1]["dim"], "identities": runs[-1][1]["identities"],
+        "search_seconds": old, "dense_seconds": new, "ratio_best": min(old) / min(new),
+        "ratio_per_repeat": [o / n for o, n in zip(old, new)], "identical_output": same,
+        "search_peak_mb": max(r[0]["peak_mb"] for r in runs), "dense_peak_mb": max(r[1]["peak_mb"] for r in runs),
+        "dense_share": d_new["dense_share"], "dense_rows": d_new["dense_rows"],
+        "search_widened": d_old["widened_queries"], "triplets": runs[-1][1]["summary"]["triplets"],
+        "load_average": load,
+    }
+    print(f"  search path / dense path (best of each) {min(old) / min(new):.1f}x; identical output: {same}",
+          flush=True)
+
+
 def markdown(results):
     """Markdown tables of a results JSON (what docs/benchmarks_mining.md shows)."""
     lines = []
+    fe = results.get("first_epoch")
+    if fe:
+        lines += ["| run | search path (s) | dense path (s) | ratio |", "|---|---|---|---|"]
+        for i, (o, n) in enumerate(zip(fe["search_seconds"], fe["dense_seconds"]), 1):
+            lines.append(f"| {i} | {o:.1f} | {n:.1f} | {o / n:.1f}x |")
+        lines.append(f"| best of each | {min(fe['search_seconds']):.1f} | {min(fe['dense_seconds']):.1f} | "
+                     f"{fe['ratio_best']:.1f}x |")
+        lines += ["", f"{fe['rows']} rows x {fe['dim']}, {fe['identities']} identities; sampled band share "
+                  f"{fe['dense_share']:.3f}; search path widened {fe['search_widened']} queries; "
+                  f"{fe['triplets']} triplets; identical output: {fe['identical_output']}; peak MB search "
+                  f"{fe['search_peak_mb']:.0f}, dense {fe['dense_peak_mb']:.0f}; load average "
+                  + ", ".join(f"{v:.1f}" for v in fe["load_average"]), ""]
     ex = results.get("exact")
     if ex:
         lines += ["| run | raw faiss flat k=100 (s) | exact mining (s) | ratio |", "|---|---|---|---|"]
@@ -253,8 +324,12 @@ def markdown(results):
 def main(argv=None):
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--part", choices=("exact", "approx", "scaling", "all"), default="all")
+    p.add_argument("--case", choices=("mid-training", "first-epoch"), default="mid-training",
+                   help="first-epoch: time the dense path against the search path on a poorly separated "
+                        "table (replaces --part; --rows, --identities, --dim, --repeat apply)")
     p.add_argument("--rows", type=int, default=100_000)
-    p.add_argument("--identities", type=int, default=2_000)
+    p.add_argument("--identities", type=int, default=None,
+                   help="identities (default 2,000; with --case first-epoch, rows / 25)")
     p.add_argument("--dim", type=int, default=128)
     p.add_argument("--k", type=int, default=100, help="neighbours (miner) and k of the raw search")
     p.add_argument("--repeat", type=int, default=2, help="alternated baseline/mine runs of part 1")
@@ -271,9 +346,12 @@ def main(argv=None):
     p.add_argument("--json", help="write all results to this JSON file")
     p.add_argument("--tmp", default=tempfile.gettempdir(), help="folder for the mined outputs")
     p.add_argument("--markdown", metavar="JSON", help="print the tables of a results file and exit")
-    p.add_argument("--child", choices=("baseline", "mine"), help=argparse.SUPPRESS)
+    p.add_argument("--child", choices=("baseline", "mine", "mine-search"), help=argparse.SUPPRESS)
+    p.add_argument("--first-epoch", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--index", default="exact", help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    if args.identities is None:
+        args.identities = args.rows // 25 if args.case == "first-epoch" else 2_000
     if args.child:
         return child(args)
     if args.markdown:
@@ -284,14 +362,16 @@ def main(argv=None):
 
     results = {"machine": {"cpus": os.cpu_count(), "faiss_threads": faiss.omp_get_max_threads(),
                            "faiss": faiss.__version__, "numpy": np.__version__},
-               "args": {k: v for k, v in vars(args).items() if k not in ("child", "index")},
+               "args": {k: v for k, v in vars(args).items() if k not in ("child", "index", "first_epoch")},
                "started": time.strftime("%Y-%m-%d %H:%M")}
     cache = {}
-    if args.part in ("exact", "all"):
+    if args.case == "first-epoch":
+        part_first_epoch(args, results)
+    elif args.part in ("exact", "all"):
         part_exact(args, results)
-    if args.part in ("approx", "all"):
+    if args.case == "mid-training" and args.part in ("approx", "all"):
         part_approx(args, results, cache)
-    if args.part in ("scaling", "all"):
+    if args.case == "mid-training" and args.part in ("scaling", "all"):
         part_scaling(args, results, cache)
     if args.json:
         os.makedirs(os.path.dirname(os.path.abspath(args.json)), exist_ok=True)
