@@ -169,8 +169,34 @@ def _above(t):
     return float(np.nextafter(np.float64(t), np.inf))
 
 
+# While _assemble reads one ScoreCounts many ways, its error rates are computed once (see _memo).
+_MEMO = threading.local()
+
+
+@contextlib.contextmanager
+def _reading(counts):
+    """Within the block, :func:`_rate_counts` and :func:`error_rates` of ``counts`` are computed once."""
+    _MEMO.counts, _MEMO.values = counts, {}
+    try:
+        yield
+    finally:
+        _MEMO.counts = _MEMO.values = None
+
+
+def _memo(name, counts, compute):
+    if getattr(_MEMO, "counts", None) is not counts:
+        return compute()
+    if name not in _MEMO.values:
+        _MEMO.values[name] = compute()
+    return _MEMO.values[name]
+
+
 def _rate_counts(counts):
     """Integer form of :func:`error_rates`: thresholds, impostors >= t, genuines < t (m+1 points)."""
+    return _memo("rate_counts", counts, lambda: _compute_rate_counts(counts))
+
+
+def _compute_rate_counts(counts):
     thr, gen, imp = counts
     top = _above(thr[-1]) if thr.size else 0.0
     thresholds = np.append(thr, top)
@@ -206,9 +232,12 @@ def error_rates(counts):
     fnmr : ndarray of float64, shape (m + 1,)
         Share of genuine pairs with score ``< threshold``.
     """
-    g, i = _totals(counts)
-    thresholds, imp_ge, gen_lt = _rate_counts(counts)
-    return thresholds, imp_ge / i, gen_lt / g
+    def compute():
+        g, i = _totals(counts)
+        thresholds, imp_ge, gen_lt = _rate_counts(counts)
+        return thresholds, imp_ge / i, gen_lt / g
+
+    return _memo("error_rates", counts, compute)
 
 
 def roc_points(counts):
@@ -539,6 +568,11 @@ def _resolvable(x, n_imp):
 
 
 def _assemble(counts, targets, curve_points, ci, bootstrap_info, auc_value, auc_bound, groups):
+    with _reading(counts):
+        return _assemble_read(counts, targets, curve_points, ci, bootstrap_info, auc_value, auc_bound, groups)
+
+
+def _assemble_read(counts, targets, curve_points, ci, bootstrap_info, auc_value, auc_bound, groups):
     n_gen = int(counts.genuine.sum())
     n_imp = int(counts.impostor.sum())
     eer, eer_t = equal_error_rate(counts)
@@ -1779,6 +1813,15 @@ def _groups_all_pairs(gvalues, gcodes, codes, targets, counts, n_imp, op_bin, ob
     return _group_report(gvalues, targets, thr, gen_lt_g, gen_g, imp_ge_g, imp_g)
 
 
+def _value_counts(v):
+    """Distinct values of ``v`` ascending and how often each occurs."""
+    v = np.sort(v)
+    if v.size == 0:
+        return v.astype(np.float64), np.empty(0, np.int64)
+    starts = np.flatnonzero(np.r_[True, v[1:] != v[:-1]])
+    return v[starts].astype(np.float64), np.diff(np.r_[starts, v.size]).astype(np.int64)
+
+
 def _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, nonempty):
     """ScoreCounts with exact values wherever they are known and one tied entry per other bin.
 
@@ -1790,16 +1833,27 @@ def _merged_counts(gval, gkey, cvals, ckeys, collect_bins, gen_hist, imp_hist, n
     exact_bin[collect_bins] = True
     exact_bin[imp_hist == 0] = True  # genuine-only bins: the genuine scores are all known
     tied = nonempty[~exact_bin[nonempty]]
-    ex_v = np.concatenate([gval[exact_bin[gkey]], cvals])
-    ex_g = np.zeros(ex_v.size, np.int64)
-    ex_g[: ex_v.size - cvals.size] = 1
-    order = np.argsort(ex_v)  # the order among equal values does not matter: they are summed
-    ex_v, ex_g = ex_v[order], ex_g[order]
-    first = np.r_[True, ex_v[1:] != ex_v[:-1]] if ex_v.size else np.empty(0, bool)
-    starts = np.flatnonzero(first)
-    ex_gc = np.add.reduceat(ex_g, starts) if starts.size else np.empty(0, np.int64)
-    ex_ic = np.diff(np.r_[starts, ex_v.size]) - ex_gc
-    ex_v = ex_v[starts]
+    # distinct exact values with their genuine and impostor counts: each side sorted apart (a
+    # plain sort, no argsort), then the genuine values merged into the impostor ones
+    gu, gc = _value_counts(gval[exact_bin[gkey]])
+    iu, ic = _value_counts(cvals)
+    at = np.searchsorted(iu, gu)
+    shared = at < iu.size
+    shared[shared] = iu[at[shared]] == gu[shared]
+    new_g = ~shared
+    pos = np.searchsorted(iu, gu[new_g]) + np.arange(int(new_g.sum()))
+    m = iu.size + pos.size
+    from_imp = np.ones(m, bool)
+    from_imp[pos] = False
+    ex_v = np.empty(m)
+    ex_v[pos] = gu[new_g]
+    ex_v[from_imp] = iu
+    ex_ic = np.zeros(m, np.int64)
+    ex_ic[from_imp] = ic
+    ex_gc = np.zeros(m, np.int64)
+    ex_gc[pos] = gc[new_g]
+    imp_slot = np.flatnonzero(from_imp)
+    ex_gc[imp_slot[at[shared]]] = gc[shared]
     t_v = _bin_value(tied)
     # no exact value equals a tied one (their bins differ): merge the two sorted runs
     pos = np.searchsorted(t_v, ex_v) + np.arange(ex_v.size)
