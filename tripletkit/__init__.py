@@ -4,9 +4,13 @@ The public verbs are the commands of the ``tripletkit`` CLI: :func:`check`, :fun
 :func:`score`, :func:`sweep`, :func:`run_demo`, and :func:`triplet_loss_report` (``tripletkit loss``).
 """
 
-from ._errors import TripletkitError, TripletkitWarning
-from .config import load_config
-from .table import EmbeddingTable, check, read_table, write_table
+from ._blas import hint_openblas_coretype
+
+hint_openblas_coretype()  # before anything imports faiss (see tripletkit/_blas.py)
+
+from ._errors import TripletkitError, TripletkitWarning  # noqa: E402
+from .config import load_config  # noqa: E402
+from .table import EmbeddingTable, check, read_table, write_table  # noqa: E402
 
 __version__ = "0.1.0"
 
