@@ -29,7 +29,7 @@ import numpy as np
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path, check_not_input, check_output
 from .config import EvaluationConfig
-from .table import as_table
+from .table import as_table, source_path
 
 __all__ = ["score", "read_pair_list"]
 
@@ -231,13 +231,6 @@ def _guard_memory(table, cfg):
                        suggestion="lower --memory-mb or --block-rows, or score a fixed --pairs list")
 
 
-def _source_path(source):
-    """The file a source was read from: a path, or an EmbeddingTable's ``source``; else None."""
-    if isinstance(source, (str, Path)):
-        return source
-    return getattr(source, "source", None)
-
-
 def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None):
     """Score held-out embeddings: verification, retrieval, clustering and embedding health.
 
@@ -314,7 +307,7 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
     if out is not None:
         # fail before the work, not after it; and never replace a folder holding an input
         check_output(out, force=force, directory=True)
-        check_not_input(out, [_source_path(source), config.pairs])
+        check_not_input(out, [source_path(source), config.pairs])
     cfg = config
     stage_seconds = {}
     notes = []

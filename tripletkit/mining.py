@@ -105,7 +105,7 @@ from .config import MiningConfig, override
 from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
                     faiss_threads, query_block_rows, resolve_kind)
 from .loss import REGIMES, regime_codes
-from .table import EmbeddingTable, as_table
+from .table import EmbeddingTable, as_table, source_path
 
 __all__ = ["mine", "MiningSummary", "REGIMES", "TRIPLET_COLUMNS", "DUPLICATE_COLUMNS",
            "distance_log_weights", "duplicates_path", "triplet_schema"]
@@ -1259,7 +1259,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         dup_out = duplicates_path(out)
         check_output(out, force=force)
         check_output(dup_out, force=force)
-        src = source if isinstance(source, (str, Path)) else getattr(source, "source", None)
+        src = source_path(source)
         if src is not None and Path(src).resolve() in (out.resolve(), dup_out.resolve()):
             raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     table = as_table(source, **(table_options or {}))

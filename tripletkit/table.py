@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 from ._errors import TripletkitError
 from ._io import atomic_path
 
-__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "check", "require_pairs"]
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs"]
 
 #: Norms within this distance of 1 count as "already unit length".
 UNIT_NORM_TOLERANCE = 1e-3
@@ -422,6 +422,14 @@ def _embedding_matrix(col, name, ids, where):
 def read_table(path, **options):
     """Read an embedding table; shorthand for :meth:`EmbeddingTable.read`."""
     return EmbeddingTable.read(path, **options)
+
+
+def source_path(source):
+    """The file a source of :func:`as_table` is read from: a path, or an EmbeddingTable's
+    ``source`` (None for arrays or a table built in memory)."""
+    if isinstance(source, (str, Path)):
+        return source
+    return getattr(source, "source", None)
 
 
 def as_table(source, **options):
