@@ -365,14 +365,19 @@ def _count_below(values, lo, hi, x):
     return left - lo
 
 
+def _group_firsts(groups):
+    """Boolean mask of the first element of each run of equal (sorted) ``groups`` (n >= 1)."""
+    first = np.ones(groups.size, dtype=bool)
+    first[1:] = groups[1:] != groups[:-1]
+    return first
+
+
 def _rank_in_groups(groups):
     """0-based position of each element within its run of equal (sorted) ``groups``."""
     n = groups.size
     if not n:
         return np.zeros(0, dtype=np.int64)
-    first = np.ones(n, dtype=bool)
-    first[1:] = groups[1:] != groups[:-1]
-    starts = np.flatnonzero(first)
+    starts = np.flatnonzero(_group_firsts(groups))
     return np.arange(n, dtype=np.int64) - np.repeat(starts, np.diff(np.append(starts, n)))
 
 
@@ -426,11 +431,9 @@ def _top_in_groups(groups, score, rows, k):
     ``groups`` (sorted), in (group, -score, row) order: what a lexsort by (group, -score, row)
     would put first, found with ``k`` passes of a per-group maximum instead of a sort of every
     entry. Rows are distinct within a group (candidate rows of one anchor)."""
-    n = groups.size
-    if not n:
+    if not groups.size:
         return np.zeros(0, dtype=np.int64)
-    first = np.ones(n, dtype=bool)
-    first[1:] = groups[1:] != groups[:-1]
+    first = _group_firsts(groups)
     starts = np.flatnonzero(first)
     member = np.cumsum(first) - 1  # group number of each entry
     live = score.astype(np.float64, copy=True)

@@ -1079,6 +1079,9 @@ class _TopImpostors:
         self.keep = int(keep)
         self.share = min(1.0, 2.0 * keep / max(n_imp, 1))
         self.chunk = chunk
+        self._empty()
+
+    def _empty(self):
         self.floor = 1  # lowest bin kept; 1 = every pair
         self.vals, self.keys, self.rows, self.cols = [], [], [], []
         self.count = 0
@@ -1111,11 +1114,10 @@ class _TopImpostors:
     def fresh(self, workers):
         """An empty instance for one of ``workers`` threads: the same share of its own impostors,
         and a part of ``keep`` (see :func:`_worker_keep`)."""
-        return _TopImpostors(_worker_keep(self.keep, workers), 1, self.chunk)._with_share(self.share)
-
-    def _with_share(self, share):
-        self.share = share
-        return self
+        other = copy.copy(self)
+        other.keep = _worker_keep(self.keep, workers)
+        other._empty()
+        return other
 
     def absorb(self, parts):
         """Become the union of ``parts`` (instances that each saw some blocks), complete from the
@@ -1189,41 +1191,47 @@ def default_workers(blocks, memory_budget):
     return int(max(1, min(os.cpu_count() or 1, len(blocks.block_starts()), memory_budget // per_worker)))
 
 
-def _in_workers(blocks, workers, work):
-    """Run ``work(w, view, starts)`` for worker ``w`` in ``workers`` threads; worker w takes blocks
-    w, w + workers, ... (a fixed assignment, so each worker's share is the same on every run).
+def _in_threads(items, workers, work):
+    """Run ``work(w, part)`` in ``workers`` threads, where ``part`` iterates over items w,
+    w + workers, ... (a fixed assignment, so each worker's share is the same on every run).
     Returns the results in worker order. An exception in one worker (or an interrupt of the
-    caller) stops the others at their next block."""
-    starts = blocks.block_starts()
-    workers = max(1, min(int(workers), len(starts)))
+    caller) stops the others at their next item."""
+    workers = max(1, min(int(workers), len(items)))
     stop = threading.Event()
 
-    def run(w, view):
-        def part():
-            for r0 in starts[w::workers]:
-                if stop.is_set():
-                    raise _Stopped()
-                yield r0
-        return work(w, view, part())
+    def part(w):
+        for item in items[w::workers]:
+            if stop.is_set():
+                raise _Stopped()
+            yield item
 
-    with _one_blas_thread():
-        if workers == 1:
-            return [work(0, blocks, iter(starts))]
-        pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify")
-        try:
-            futures = [pool.submit(run, w, blocks.view()) for w in range(workers)]
-            wait(futures, return_when=FIRST_EXCEPTION)
-            if any(f.exception() is not None for f in futures if f.done()):
-                stop.set()
-                wait(futures)
-                raise next(f.exception() for f in futures
-                           if f.exception() is not None and not isinstance(f.exception(), _Stopped))
-            return [f.result() for f in futures]
-        except BaseException:
+    if workers == 1:
+        return [work(0, part(0))]
+    pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify")
+    try:
+        futures = [pool.submit(work, w, part(w)) for w in range(workers)]
+        wait(futures, return_when=FIRST_EXCEPTION)
+        if any(f.exception() is not None for f in futures if f.done()):
             stop.set()
-            raise
-        finally:
-            pool.shutdown(wait=True)
+            wait(futures)
+            raise next(f.exception() for f in futures
+                       if f.exception() is not None and not isinstance(f.exception(), _Stopped))
+        return [f.result() for f in futures]
+    except BaseException:
+        stop.set()
+        raise
+    finally:
+        pool.shutdown(wait=True)
+
+
+def _in_workers(blocks, workers, work):
+    """:func:`_in_threads` over the blocks: ``work(w, view, starts)`` with a view of ``blocks``
+    (buffers of its own) per worker, every product with one BLAS thread."""
+    starts = blocks.block_starts()
+    workers = max(1, min(int(workers), len(starts)))
+    views = [blocks] if workers == 1 else [blocks.view() for _ in range(workers)]
+    with _one_blas_thread():
+        return _in_threads(starts, workers, lambda w, part: work(w, views[w], part))
 
 
 class _Stopped(Exception):
@@ -1309,21 +1317,16 @@ def _process_kept(blocks, ref, runs, workers):
     absorbed in worker order."""
     runs = [r for r in runs if r[0].size]
     workers = max(1, min(int(workers), len(runs)))
-    if workers == 1:
-        for kk, kv, kr, kc in runs:
-            ref.process(blocks, kk, kv, kr, kc)
-        return
-    refs = [_Refiner(*ref.args) for _ in range(workers)]
+    refs = [ref] if workers == 1 else [_Refiner(*ref.args) for _ in range(workers)]
 
-    def work(w):
-        for run in runs[w::workers]:
+    def work(w, part):
+        for run in part:
             refs[w].process(blocks, *run)
 
-    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="tripletkit-verify") as pool:
-        for done in [pool.submit(work, w) for w in range(workers)]:
-            done.result()
-    for r in refs:
-        ref.absorb(r.export())
+    _in_threads(runs, workers, work)
+    if workers > 1:
+        for copy_ in refs:
+            ref.absorb(copy_.export())
 
 
 def _pass_two(blocks, ref, chunk, use_table, workers=1):
