@@ -44,9 +44,8 @@ _BYTES_PER_TRIPLET = 80
 # Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
 # alive at once (measured with tracemalloc on small tables, where they dominate).
 _HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
-# Each verification worker thread: per score of a block a float32 product, an int32 key and a
-# selection byte; and its own int64 histogram with an int32 scratch one.
-_BYTES_PER_BLOCK_SCORE = 9
+# Each verification worker thread also has its own int64 histogram with an int32 scratch one
+# (its block buffers: tripletkit.metrics.verification._BYTES_PER_BLOCK_SCORE per score).
 _WORKER_HISTOGRAM_BYTES = 12 * (2**19 + 2**11)
 # Verification keeps the highest impostor scores in at most this share of its memory budget
 # (tripletkit.metrics.verification._KEEP_SHARE).
@@ -324,14 +323,11 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
     _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
                  identities=identities)
     budget = memory_mb * _MB
+    from .metrics.verification import _BYTES_PER_BLOCK_SCORE, block_size, workers_for
+
     nn = max(n, 1)
-    if block_rows:
-        b = min(block_rows, nn)
-    else:
-        b = min(max(1, budget // (2 * _BYTES_PER_BLOCK_SCORE * nn)), max(256, nn // 16), nn)
-    if workers is None:
-        workers = min(os.cpu_count() or 1, max(1, budget // (_BYTES_PER_BLOCK_SCORE * b * nn)))
-    workers = max(1, min(int(workers), -(-nn // b)))
+    b = block_size(nn, block_rows or None, budget)  # the verification's own rules
+    workers = workers_for(nn, b, budget) if workers is None else max(1, min(int(workers), -(-nn // b)))
     vectors = n * d * 4
     verification = (vectors + workers * (_BYTES_PER_BLOCK_SCORE * b * n + _WORKER_HISTOGRAM_BYTES)
                     + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE + int(_KEEP_SHARE * budget))

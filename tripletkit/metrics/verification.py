@@ -949,17 +949,9 @@ class _Blocks:
 
     def __init__(self, x, codes, gcodes, block_rows, memory_budget):
         order = np.argsort(codes, kind="stable")
-        n = x.shape[0]
-        # two workers' buffers: a float32 product, an int32 bin key and a byte of selection per
-        # score of a block each
-        block_rows_budget = max(1, int(memory_budget // (2 * _BYTES_PER_BLOCK_SCORE * max(n, 1))))
-        if block_rows is None:
-            # the leading square of each block is computed in full but only its upper half is
-            # used: keep blocks to a sixteenth of the rows (at least 256) so that little is wasted
-            block_rows = min(block_rows_budget, max(256, n // 16))
         self._arrange(np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32), codes[order],
                       None if gcodes is None else gcodes[order],
-                      int(max(1, min(n, block_rows, (2**31 - 1) // max(n, 1)))))
+                      block_size(x.shape[0], block_rows, memory_budget))
 
     @classmethod
     def arranged(cls, xs, codes, gcodes, b):
@@ -1184,11 +1176,27 @@ def _one_blas_thread():
         yield
 
 
+def block_size(n, block_rows, memory_budget):
+    """Rows per block for ``n`` rows: ``block_rows`` if given, else sized for two workers'
+    buffers (a float32 product, an int32 bin key and a byte of selection per score each) within
+    ``memory_budget``, and at most a sixteenth of the rows (at least 256): the leading square of
+    each block is computed in full but only its upper half is used."""
+    nn = max(n, 1)
+    if block_rows is None:
+        block_rows = min(max(1, int(memory_budget // (2 * _BYTES_PER_BLOCK_SCORE * nn))), max(256, n // 16))
+    return int(max(1, min(n, block_rows, (2**31 - 1) // nn)))
+
+
+def workers_for(n, b, memory_budget):
+    """Worker threads for ``n`` rows in blocks of ``b``: one per CPU, at most one per block, and
+    as many as the memory budget holds buffers for (two with the default block size)."""
+    per_worker = _BYTES_PER_BLOCK_SCORE * b * max(n, 1)
+    return int(max(1, min(os.cpu_count() or 1, -(-max(n, 1) // b), memory_budget // per_worker)))
+
+
 def default_workers(blocks, memory_budget):
-    """Worker threads for the passes: one per CPU, at most one per block, and as many as the
-    memory budget holds buffers for (two with the default block size)."""
-    per_worker = _BYTES_PER_BLOCK_SCORE * blocks.b * max(blocks.n, 1)
-    return int(max(1, min(os.cpu_count() or 1, len(blocks.block_starts()), memory_budget // per_worker)))
+    """:func:`workers_for` of a :class:`_Blocks`."""
+    return workers_for(blocks.n, blocks.b, memory_budget)
 
 
 def _in_threads(items, workers, work):
