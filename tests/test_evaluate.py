@@ -438,3 +438,55 @@ def test_auc_equals_sklearn_roc_auc_score(table_path):
     # FNMR at FMR 0.01 = 1 - the highest TPR among ROC points with FPR <= 0.01
     expected = 1.0 - tpr[fpr <= 0.01].max()
     assert report["verification"]["fnmr_at_fmr"]["0.01"]["fnmr"] == pytest.approx(expected, abs=1e-12)
+
+
+_SAME_EVERYWHERE = r"""
+import json, sys
+import numpy as np
+from tripletkit.config import EvaluationConfig
+from tripletkit.evaluate import score
+from tripletkit.metrics.verification import verify_all_pairs
+from tripletkit.table import EmbeddingTable
+
+path = sys.argv[1]
+out = {"score": [], "verify": [], "passes": []}
+for threads, memory_mb in ((1, 16), (2, 512)):
+    r = score(path, config=EvaluationConfig(threads=threads, memory_mb=memory_mb, plots=False), quiet=True)
+    for key in ("seconds", "stage_seconds"):
+        r.pop(key)
+    r["config"].pop("threads"), r["config"].pop("memory_mb")
+    out["passes"].append(r["verification"].pop("passes"))
+    out["score"].append(r)
+table = EmbeddingTable.read(path)
+groups = np.where(table.labels % 3 == 0, "bay", "spit")
+for workers, budget in ((1, 1 << 20), (2, 1 << 20), (2, 256 << 20)):
+    r = verify_all_pairs(table.embeddings, table.labels, groups=groups, workers=workers, memory_budget=budget,
+                         fmr_targets=(0.001, 0.01), bootstrap=50)
+    out["passes"].append(r.pop("passes"))
+    out["verify"].append(r)
+print(json.dumps(out))
+"""
+
+
+def test_report_is_the_same_bit_for_bit_whatever_the_blas_threads_workers_and_budget(tmp_path):
+    # The demo's held-out table scored in fresh processes with 1 and 2 BLAS/OpenMP threads, 1 and
+    # 2 verification workers, budgets whose blocks differ in shape and that take one pass or two:
+    # every number of the report, the AUC and the thresholds included, is equal bit for bit (the
+    # scores are exact cosines on a grid, see tripletkit/_exact.py). JSON keeps every float's bits.
+    import subprocess
+    import sys
+
+    heldout = str(ROOT / "demo_data" / "heldout_embeddings.parquet")
+    results = []
+    for blas in ("1", "2"):
+        env = dict(os.environ, OPENBLAS_NUM_THREADS=blas, OMP_NUM_THREADS=blas, MKL_NUM_THREADS=blas)
+        done = subprocess.run([sys.executable, "-c", _SAME_EVERYWHERE, heldout], capture_output=True, text=True,
+                              env=env, cwd=tmp_path, timeout=600)
+        assert done.returncode == 0, done.stderr
+        results.append(json.loads(done.stdout))
+    reports = [r for res in results for r in res["score"]]
+    assert all(r == reports[0] for r in reports[1:])
+    verified = [r for res in results for r in res["verify"]]
+    assert all(r == verified[0] for r in verified[1:])
+    # both ways of listing the refined bins were exercised
+    assert {p for res in results for p in res["passes"]} == {1, 2}

@@ -170,18 +170,18 @@ def test_mining_bytes_grows_with_the_table():
 
 def test_scoring_bytes_hand_computed():
     # n=1000, d=8, 100 rows per block, memory_mb=16, no genuine pairs, 10 identities, 2 workers.
-    # verification: scaled copy 32,000 + per worker (blocks 9*100*1000 = 900,000 + histogram
-    # 12*526,336) + histograms 7*8*526,336 + kept impostors 0.5 * 16 MiB = 8,388,608 -> the
-    # largest stage; plus the table 32,000
+    # verification: float64 copy on the exact-cosine grid 64,000 + per worker (blocks
+    # 13*100*1000 = 1,300,000 + histogram 12*526,336) + histograms 7*8*526,336 + kept impostors
+    # 0.5 * 16 MiB = 8,388,608 -> the largest stage; plus the table 32,000
     bins = 2**19 + 2**11
-    assert scoring_bytes(1000, 8, 100, memory_mb=16, identities=10, workers=2) == 32_000 + 32_000 \
-        + 2 * (900_000 + 12 * bins) + 7 * 8 * bins + 8_388_608
-    # genuine scores add 16 bytes each
+    assert scoring_bytes(1000, 8, 100, memory_mb=16, identities=10, workers=2) == 32_000 + 64_000 \
+        + 2 * (1_300_000 + 12 * bins) + 7 * 8 * bins + 8_388_608
+    # genuine scores add 24 bytes each
     assert scoring_bytes(1000, 8, 100, memory_mb=16, genuine_pairs=1000) - \
-        scoring_bytes(1000, 8, 100, memory_mb=16) == 16_000
+        scoring_bytes(1000, 8, 100, memory_mb=16) == 24_000
     # one worker fewer: one block buffer and one histogram less
     assert scoring_bytes(1000, 8, 100, memory_mb=16, workers=2) - scoring_bytes(1000, 8, 100, memory_mb=16, workers=1) \
-        == 900_000 + 12 * bins
+        == 1_300_000 + 12 * bins
 
 
 def test_scoring_bytes_health_term_grows_with_min_n_d_squared():
@@ -190,10 +190,10 @@ def test_scoring_bytes_health_term_grows_with_min_n_d_squared():
     wide = scoring_bytes(12, 100_000, 0)
     assert wide < 2**30
     # hand-computed where health is the largest stage: n = d = 2,000, one row per block,
-    # memory_mb = 1, 2 workers -> table 2,000 * 2,000 * 4 = 16,000,000; health 8 * 2,000^2 (the
-    # matrix) + 16 * 2,000 * 2,000 (a block of float64 rows and its centred copy) = 96,000,000,
-    # above verification (table + 2 * (9 * 2,000 + 6,316,032) + histograms 29,474,816 + 524,288
-    # kept = 58,692,168) and retrieval
+    # memory_mb = 1, 2 workers -> table 2,000 * 2,000 * 4 = 16,000,000; health 16 * 2,000^2 (the
+    # int64 and float64 matrices) + 8 * 2,000 * 2,000 (a block of integer rows) = 96,000,000,
+    # above verification (float64 copy 32,000,000 + 2 * (13 * 2,000 + 6,316,032) + histograms
+    # 29,474,816 + 524,288 kept = 74,683,168) and retrieval
     assert scoring_bytes(2000, 2000, 1, memory_mb=1, workers=2) == 16_000_000 + 96_000_000
     with pytest.raises(TripletkitError, match="or use a lower-dimensional projection"):
         estimate_and_guard("scoring 12 x 100,000", wide, suggestion="or use a lower-dimensional projection",

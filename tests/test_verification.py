@@ -10,6 +10,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError, TripletkitWarning
 import tripletkit.metrics.verification as V
+from tripletkit._exact import snap
 from _lattice import four_squares as _four_squares
 
 
@@ -191,22 +192,21 @@ def test_kept_impostors_are_exactly_those_above_the_floor(rng, workers):  # from
     assert np.all(blocks.codes[rows] != blocks.codes[cols])
 
 
-def test_report_does_not_depend_on_workers_or_blas_threads(rng):
+def test_report_does_not_depend_on_workers_blas_threads_or_block_shape(rng):
     # ordinary floats (not the exact lattice), many blocks, groups and bootstrap: every number
-    # of the report is the same for 1, 2 or 3 worker threads and for 1 or 2 BLAS threads of the
-    # process, since each block product runs with one BLAS thread; only ``passes`` may differ.
-    # (With the OpenBLAS of numpy 2.4 these products also agree across BLAS thread counts when
-    # left alone; the BLAS part guards the contract for builds where they do not.)
+    # of the report is the same for 1, 2 or 3 worker threads, 1 or 2 BLAS threads of the process
+    # and blocks of 71, 200 or 1200 rows (products of other shapes), since the scores are exact
+    # cosines (tripletkit/_exact.py); only ``passes`` may differ.
     from threadpoolctl import threadpool_limits
 
     x, labels = random_table(rng, 1200, 60, d=48)
     groups = rng.choice(["north", "south"], size=len(x))
-    kw = dict(fmr_targets=[0.001, 0.01], bootstrap=30, block_rows=71, groups=groups)
+    kw = dict(fmr_targets=[0.001, 0.01], bootstrap=30, groups=groups)
     reports = []
     for blas in (1, 2):
         with threadpool_limits(limits=blas, user_api="blas"):
-            for workers in (1, 2, 3):
-                r = V.verify_all_pairs(x, labels, workers=workers, **kw)
+            for workers, block_rows in ((1, 71), (2, 71), (3, 200), (2, 1200)):
+                r = V.verify_all_pairs(x, labels, workers=workers, block_rows=block_rows, **kw)
                 r.pop("passes")
                 reports.append(r)
     assert all(r == reports[0] for r in reports[1:])
@@ -247,28 +247,31 @@ def test_histogram_counting_matches_bincount(rng):
     assert np.array_equal(acc, np.bincount(keys, minlength=V._NBINS))
 
 
-def test_keys_are_monotone_and_bisection_finds_bin_edges(rng):
-    s = np.sort(rng.uniform(-1.001, 1.001, 200_000).astype(np.float32) * np.float32(V._SCORE_SCALE))
+def test_keys_are_monotone_and_bin_edges_are_exact(rng):
+    # scaled scores are exact cosines times 2**18: multiples of 2**-34 (see tripletkit._exact)
+    s = np.sort(np.rint(rng.uniform(-1.001, 1.001, 200_000) * 2.0**52) * 2.0**-34)
     k = V._keys_of(s)
     assert np.all(np.diff(k) >= 0) and k.min() >= 1 and k.max() < V._NBINS
     for key in (int(k[10]), int(k[100_000]), int(k[-5])):
         edge = V._lowest_scaled_in(key)
-        assert V._keys_of(np.array([edge], np.float32))[0] >= key
-        below = np.nextafter(edge, np.float32(-np.inf))
-        assert V._keys_of(np.array([below], np.float32))[0] < key
+        assert V._keys_of(np.array([edge]))[0] == key
+        below = edge - 2.0**-34  # the next lower score on the grid
+        assert V._keys_of(np.array([below]))[0] == key - 1
 
 
-def test_random_data_close_to_materialised(rng):
-    # float data: blocked products may differ from one-shot ones in the last bit, so the
-    # operating points agree to a pair or two, not bit for bit
+def test_random_data_equals_materialised_exact_cosines(rng):
+    # float data: the blocked path's scores are the exact cosines of the snapped rows, which a
+    # plain float64 product of the snapped rows reproduces in any order, so the operating
+    # points and the (fully listed) AUC equal the brute force bit for bit
     x, labels = random_table(rng, 400, 40)
-    s, same, _, _ = materialise(x, labels)
-    ref = V.verify_scores(s[same], s[~same], fmr_targets=[0.01], bootstrap=0)
-    out = V.verify_all_pairs(x, labels, fmr_targets=[0.01], bootstrap=0, block_rows=64)
-    g = out["genuine_pairs"]
-    assert abs(out["fnmr_at_fmr"]["0.01"]["fnmr"] - ref["fnmr_at_fmr"]["0.01"]["fnmr"]) <= 2 / g
-    assert abs(out["eer"] - ref["eer"]) < 1e-3
-    assert abs(out["auc"] - ref["auc"]) < 1e-5
+    s, same, _, _ = materialise(snap(x), labels)
+    ref = V.verify_scores(s[same], s[~same], fmr_targets=[0.01, 0.05], bootstrap=0)
+    for block_rows in (7, 64, 400):
+        out = V.verify_all_pairs(x, labels, fmr_targets=[0.01, 0.05], bootstrap=0, block_rows=block_rows,
+                                 exact_auc=True)
+        assert out["fnmr_at_fmr"] == ref["fnmr_at_fmr"]
+        assert (out["eer"], out["eer_threshold"]) == (ref["eer"], ref["eer_threshold"])
+        assert out["auc_exact"] and out["auc"] == ref["auc"]
 
 
 def test_auc_budget_gives_a_true_bound(rng):

@@ -50,8 +50,10 @@ _WORKER_HISTOGRAM_BYTES = 12 * (2**19 + 2**11)
 # Verification keeps the highest impostor scores in at most this share of its memory budget
 # (tripletkit.metrics.verification._KEEP_SHARE).
 _KEEP_SHARE = 0.5
-# One genuine pair score kept for the exact second pass: float32 score, int64 pair id, group code.
-_BYTES_PER_GENUINE = 16
+# One genuine pair score kept for the exact second pass: float64 score, int64 identity, group code.
+_BYTES_PER_GENUINE = 24
+# Rows (or columns) of integer coordinates per block of the effective dimension (2**(52 - 2*20)).
+_HEALTH_BLOCK = 4096
 
 
 # ---------------------------------------------------------------------------------------------
@@ -314,11 +316,11 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
     Returns
     -------
     int
-        The table and the verification's sorted, scaled copy (float32), two block products and
-        a key buffer (12 bytes per score of a block), the score histograms, the kept genuine
+        The table and the verification's sorted copy on the exact-cosine grid (float64), the
+        block buffers (13 bytes per score of a block and worker), the score histograms, the kept genuine
         scores and highest impostor scores, the retrieval index and its result block, the
-        k-means copy and centroids, and the effective dimension's float64 (m, m) matrix, m =
-        min(n, d), with its block of centred values (health).
+        k-means copy and centroids, and the effective dimension's int64 and float64 (m, m) matrices,
+        m = min(n, d), with a block of integer rows (health).
     """
     _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
                  identities=identities)
@@ -329,11 +331,14 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
     b = block_size(nn, block_rows or None, budget)  # the verification's own rules
     workers = workers_for(nn, b, budget) if workers is None else max(1, min(int(workers), -(-nn // b)))
     vectors = n * d * 4
-    verification = (vectors + workers * (_BYTES_PER_BLOCK_SCORE * b * n + _WORKER_HISTOGRAM_BYTES)
+    # the sorted copy snapped to the exact-cosine grid is float64: twice the table
+    verification = (2 * vectors + workers * (_BYTES_PER_BLOCK_SCORE * b * n + _WORKER_HISTOGRAM_BYTES)
                     + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE + int(_KEEP_SHARE * budget))
-    retrieval = vectors + budget
-    clustering = vectors + identities * d * 4 + n * 8
+    # retrieval and k-means work on a float64 copy on the exact-cosine grid (twice the table)
+    retrieval = 2 * vectors + budget
+    clustering = 2 * vectors + identities * d * 12 + n * 16
     m = min(n, d)
-    health = 8 * m * m + 16 * m * min(65536, max(n, d))
+    # the exact int64 matrix and its float64 centred copy, and one block of integer rows
+    health = 16 * m * m + 8 * m * min(_HEALTH_BLOCK, max(n, d))
     # the stages run one after another: the table stays, the largest stage sets the peak
     return int(vectors + max(verification, retrieval, clustering, health))

@@ -14,8 +14,10 @@ Three ways to build the table:
   The exact scores of the few bins that hold an operating point (each FMR target, the EER
   crossing) are then listed, from the highest impostor scores kept during the counting pass
   when those reach low enough, else by a second pass over the same blocks; so the operating
-  points are exactly what every score would give. Worker threads (one per CPU) compute and count
-  blocks side by side, each product with one BLAS thread. Memory is O(n*d + workers*block*n).
+  points are exactly what every score would give. Scores are the exact cosines of
+  :mod:`tripletkit._exact`, so no number depends on block shapes, threads, BLAS or process.
+  Worker threads (one per CPU) compute and count blocks side by side, each product with one BLAS
+  thread. Memory is O(n*d + workers*block*n).
 * :func:`verify_pairs` scores a fixed protocol: a list of (left, right) row pairs.
 * :func:`verify_scores` takes genuine and impostor scores directly.
 
@@ -70,6 +72,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from .._errors import TripletkitError, TripletkitWarning
+from .._exact import pair_cosines, snap
 from .._validate import as_codes, as_embeddings, check_same_length
 
 __all__ = [
@@ -773,15 +776,6 @@ def verify_scores(genuine, impostor, *, genuine_identity=None, impostor_identity
                          targets, int(bootstrap), float(confidence), seed, int(curve_points), int(grid_per_decade))
 
 
-def _pair_scores(x, left, right, chunk=1 << 16):
-    """Row-wise float32 dot products of the given row pairs (in chunks to bound memory)."""
-    out = np.empty(left.size, np.float32)
-    for s in range(0, left.size, chunk):
-        e = min(left.size, s + chunk)
-        out[s:e] = np.einsum("ij,ij->i", x[left[s:e]], x[right[s:e]])
-    return out
-
-
 def _as_positions(p, n, name):
     arr = np.asarray(p)
     if arr.ndim != 1:
@@ -822,8 +816,8 @@ def verify_pairs(embeddings, labels, left, right, *, same=None, groups=None,
     Returns
     -------
     dict
-        See :func:`verify_all_pairs`. Scores are row-wise float32 dot products; they can differ from
-        the all-pairs matrix-product scores of :func:`verify_all_pairs` in the last bit.
+        See :func:`verify_all_pairs`. Scores are the exact cosines of :mod:`tripletkit._exact`,
+        the same values :func:`verify_all_pairs` gives the same pairs.
     """
     targets = _check_targets(fmr_targets)
     _check_common(bootstrap, confidence, curve_points)
@@ -852,7 +846,7 @@ def verify_pairs(embeddings, labels, left, right, *, same=None, groups=None,
                 f"pair {first} (rows {int(lp[first])}, {int(rp[first])}) is marked same={bool(s[first])} but the "
                 f"labels say {bool(is_gen[first])}; {int(wrong.sum())} pairs disagree; fix the protocol or the labels"
             )
-    scores = _pair_scores(x, lp, rp).astype(np.float64)
+    scores = pair_cosines(snap(x), lp, rp)
     gen_grp = imp_grp = None
     if gcodes is not None:
         pg = np.where(gcodes[lp] == gcodes[rp], gcodes[lp], -1)
@@ -866,25 +860,28 @@ def verify_pairs(embeddings, labels, left, right, *, same=None, groups=None,
 # All pairs: blocked matrix product, histogram, exact values of the bins that matter
 # ---------------------------------------------------------------------------------------------
 
-# Embeddings are scaled by 2**9 so that the product of two rows is 2**18 * cosine: scaling by a power
-# of two changes no rounding, so the scaled products are exactly the float32 cosines times 2**18.
-_EMB_SCALE = np.float32(2.0**9)
+# Rows are snapped to the exact-cosine grid (tripletkit._exact) and scaled by 2**9, so the product
+# of two rows is 2**18 * the exact cosine, computed exactly by any float64 matrix product: every
+# pass, block shape, thread and process sees the same value.
+_EMB_SCALE = 2.0**9
 _SCORE_SCALE = 2.0**18
-# bin key = trunc(float32(2**18 * s + _OFFSET)): bins of width 2**-18 (about 3.8e-6), keys >= 1 for
-# s >= -1.0039. 2**19 bins (4 MiB of int64 per histogram) count faster than 2**21 finer ones, and
-# the exact values of the few bins that matter are listed anyway.
-_OFFSET = np.float32(2**18 + 2**10)
+# bin key = trunc(2**18 * s + _OFFSET), exact in float64: bins of width 2**-18 (about 3.8e-6),
+# keys >= 1 for s >= -1.0039. 2**19 bins (4 MiB of int64 per histogram) count faster than 2**21
+# finer ones, and the exact values of the few bins that matter are listed anyway.
+_OFFSET = float(2**18 + 2**10)
 # Entries of a block that are not pairs (j <= i) get a value whose key is 0, a bin never reported.
-_SENTINEL = np.float32(-(2**18 + 2**10) + 0.5)
+_SENTINEL = -(2**18 + 2**10) + 0.5
 _NBINS = 2**19 + 2**11
 _COLLECT = np.uint8(1)
 _WINDOW = np.uint8(2)
 # Above this share of scores at or above the lowest bin the second pass needs, it looks every
 # score's bin up in a table instead of comparing and listing positions.
 _TABLE_SHARE = 0.3
-# Buffers of one worker per score of a block: the float32 product, its int32 bin key and a byte
+# Buffers of one worker per score of a block: the float64 product, its int32 bin key and a byte
 # of selection.
-_BYTES_PER_BLOCK_SCORE = 9
+_BYTES_PER_BLOCK_SCORE = 13
+# Bytes of one impostor score kept in the first pass: float64 value, int32 key, row and column.
+_BYTES_PER_KEPT = 20
 # Share of the memory budget that the impostor scores kept in the first pass may take.
 _KEEP_SHARE = 0.5
 
@@ -899,7 +896,7 @@ def _keys_of(scaled, out=None):
 
 def _bin_value(k):
     """A score inside bin ``k`` (its middle), for bins whose scores are not listed exactly."""
-    return (np.asarray(k, np.float64) + 0.5 - float(_OFFSET)) / _SCORE_SCALE
+    return (np.asarray(k, np.float64) + 0.5 - _OFFSET) / _SCORE_SCALE
 
 
 def _hist_into(keys, acc, tmp=None):
@@ -913,43 +910,33 @@ def _hist_into(keys, acc, tmp=None):
     acc += tmp
 
 
-def _ordered(v):
-    """float32 -> int with the same order (for searching float32 values by bisection)."""
-    bits = int(np.float32(v).view(np.int32))
-    return bits if bits >= 0 else -(bits & 0x7FFFFFFF)
-
-
-def _unordered(o):
-    bits = o if o >= 0 else ((-o) | 0x80000000) - 2**32
-    return np.int32(bits).view(np.float32)
+# Scaled scores are multiples of this step (exact cosines are multiples of 2**-52).
+_STEP = 2.0**-34
 
 
 def _lowest_scaled_in(k):
-    """Smallest float32 scaled score whose key is >= k (keys are non-decreasing in the score)."""
-    hi = _ordered(np.float32(k - float(_OFFSET)))  # its key is exactly k
-    lo = _ordered(np.float32(k - float(_OFFSET) - 1.0))  # its key is below k
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        if int(_keys_of(np.array([_unordered(mid)], np.float32))[0]) >= k:
-            hi = mid
-        else:
-            lo = mid
-    return _unordered(hi)
+    """Smallest scaled score (a multiple of ``_STEP``) whose key is >= k.
+
+    ``s + _OFFSET`` is exact below 2**19; above (cosines over 0.996) it rounds to a multiple of
+    2**-33, which can lift a score one step below the edge into bin k.
+    """
+    s = float(k) - _OFFSET
+    while _keys_of(np.array([s - _STEP]))[0] >= k:
+        s -= _STEP
+    return s
 
 
 class _Blocks:
     """Rows sorted by identity, scaled, and cut into blocks of rows against all later rows.
 
-    The block size depends only on ``n``, ``block_rows`` and ``memory_budget`` (never on the
-    number of threads), and every product is computed with one BLAS thread (see
-    :func:`_one_blas_thread`), so a score is the same float whichever thread, pass or process
-    computes its block. :meth:`view` gives a copy sharing the rows with buffers of its own, for
-    one worker thread.
+    The rows are snapped to the exact-cosine grid (:mod:`tripletkit._exact`), so a score is the
+    same float whichever block shape, thread, pass, BLAS kernel or process computes it.
+    :meth:`view` gives a copy sharing the rows with buffers of its own, for one worker thread.
     """
 
     def __init__(self, x, codes, gcodes, block_rows, memory_budget):
         order = np.argsort(codes, kind="stable")
-        self._arrange(np.ascontiguousarray(x[order] * _EMB_SCALE, dtype=np.float32), codes[order],
+        self._arrange(snap(x[order], scale=_EMB_SCALE), codes[order],
                       None if gcodes is None else gcodes[order],
                       block_size(x.shape[0], block_rows, memory_budget))
 
@@ -958,10 +945,7 @@ class _Blocks:
         """Blocks over rows already sorted and scaled: the ``xs``, ``codes``, ``gcodes`` and ``b``
         of another instance (a copy in another process computes the very same products)."""
         self = cls.__new__(cls)
-        # Arrays received over a network can start at any byte; OpenBLAS then takes another
-        # path and its products differ in the last bit (measured), so realign them.
-        xs = np.require(xs, np.float32, ["C", "A"])
-        self._arrange(xs, codes, gcodes, b)
+        self._arrange(np.require(xs, np.float64, ["C", "A"]), codes, gcodes, b)
         return self
 
     def block_starts(self):
@@ -993,7 +977,7 @@ class _Blocks:
         """Scaled scores of the block starting at row ``r0`` against rows ``r0..n-1``, in this
         view's buffer (valid until its next call); entries ``j <= i`` hold ``_SENTINEL``."""
         if self._sbuf is None:
-            self._sbuf = np.empty(self.b * self.n, np.float32)
+            self._sbuf = np.empty(self.b * self.n, np.float64)
         n = self.n
         r1 = min(n, r0 + self.b)
         rows, m = r1 - r0, n - r0
@@ -1132,7 +1116,7 @@ class _TopImpostors:
 
     def _joined(self):
         if not self.vals:
-            return np.empty(0, np.int32), np.empty(0, np.float32), np.empty(0, np.int32), np.empty(0, np.int32)
+            return np.empty(0, np.int32), np.empty(0, np.float64), np.empty(0, np.int32), np.empty(0, np.int32)
         return (np.concatenate(self.keys), np.concatenate(self.vals), np.concatenate(self.rows),
                 np.concatenate(self.cols))
 
@@ -1158,7 +1142,7 @@ def _count_block(blocks, r0, s, hist, tmp):
 
 
 def _genuine_arrays(gvals, gids, ggrps):
-    gval = np.concatenate(gvals) if gvals else np.empty(0, np.float32)
+    gval = np.concatenate(gvals) if gvals else np.empty(0, np.float64)
     gid = np.concatenate(gids) if gids else np.empty(0, np.int64)
     ggrp = np.concatenate(ggrps) if ggrps else None
     return gval, gid, ggrp
@@ -1168,9 +1152,8 @@ def _genuine_arrays(gvals, gids, ggrps):
 def _one_blas_thread():
     """Run the block products with one BLAS thread.
 
-    Threads of our own run blocks side by side instead; and a product then does not depend on
-    the BLAS thread count of the process (OpenBLAS takes other code paths with more threads, and
-    the last bit of a score can differ), so neither does any number of the report.
+    Threads of our own run blocks side by side instead, so BLAS threads would only compete with
+    them. (No number depends on it: the products are exact.)
     """
     with threadpool_limits(limits=1, user_api="blas"):
         yield
@@ -1178,7 +1161,7 @@ def _one_blas_thread():
 
 def block_size(n, block_rows, memory_budget):
     """Rows per block for ``n`` rows: ``block_rows`` if given, else sized for two workers'
-    buffers (a float32 product, an int32 bin key and a byte of selection per score each) within
+    buffers (a float64 product, an int32 bin key and a byte of selection per score each) within
     ``memory_budget``, and at most a sixteenth of the rows (at least 256): the leading square of
     each block is computed in full but only its upper half is used."""
     nn = max(n, 1)
@@ -1467,7 +1450,7 @@ class _Refiner:
     def finish(self):
         if self.win is not None:
             self._flush()
-        vals = np.concatenate(self.values) if self.values else np.empty(0, np.float32)
+        vals = np.concatenate(self.values) if self.values else np.empty(0, np.float64)
         keys = np.concatenate(self.keys) if self.keys else np.empty(0, np.int32)
         pg = np.concatenate(self.pgroup) if self.pgroup else None
         return vals, keys, pg
@@ -1507,10 +1490,8 @@ def block_runner(runner):
     ``runner.second_pass(blocks, ref, chunk, use_table)`` must leave ``ref`` as
     :func:`refine_blocks` over all blocks would (e.g. by :meth:`_Refiner.absorb` of the
     :meth:`_Refiner.export` of copies that each saw some blocks). ``tripletkit.distributed``
-    runs them as Dask tasks. Every number of the report is the same as in this process when the
-    runner computes the same products (same rows, same blocks, same BLAS build; the products
-    run with one BLAS thread everywhere); ``passes`` is then always 2, since impostors are not
-    kept across blocks.
+    runs them as Dask tasks. Every number of the report is the same as in this process (the
+    products are exact); ``passes`` is then always 2, since impostors are not kept across blocks.
     """
     token = _BLOCK_RUNNER.set(runner)
     try:
@@ -1528,7 +1509,7 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     ----------
     embeddings : array-like of shape (n, d)
         Unit-normalised embeddings (float32, C-contiguous preferred; rows must have norm 1 within
-        1e-3). Scores are cosine similarities: the float32 matrix product.
+        1e-3). Scores are cosine similarities, exact on the grid of :mod:`tripletkit._exact`.
     labels : array-like of shape (n,)
         Identity of each row: a pair is genuine when both rows share the label.
     groups : array-like of shape (n,), optional
@@ -1545,9 +1526,9 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     curve_points : int, default 512
         About how many ROC/DET points to report (even in log FMR and in FNMR).
     memory_budget : int, default 256 MiB
-        Bytes for the block buffers (9 bytes per score of a block and worker: the product, a
+        Bytes for the block buffers (13 bytes per score of a block and worker: the product, a
         bin key and a selection byte; blocks are sized for two workers) and, on top, for the
-        impostor scores kept in the first pass (16 bytes each, up to half the budget).
+        impostor scores kept in the first pass (20 bytes each, up to half the budget).
     block_rows : int, optional
         Rows per block, overriding ``memory_budget``.
     exact_auc : {"auto", True, False}, default "auto"
@@ -1565,8 +1546,8 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     workers : int, optional
         Threads that compute and count blocks side by side (default: one per CPU, at most as
         many as ``memory_budget`` holds block buffers for: two with the default block size).
-        Every product runs with one BLAS thread, so no number of the report depends on
-        ``workers`` or on the BLAS thread count (``passes`` may: see below). The BLAS limit is
+        No number of the report depends on ``workers`` or on the BLAS thread count (``passes``
+        may: see below). Every product runs with one BLAS thread, for speed; that limit is
         process-wide (``threadpoolctl``) while the passes run, so other threads of the caller
         that multiply matrices meanwhile run with one BLAS thread too.
 
@@ -1585,8 +1566,9 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
 
     Notes
     -----
-    Exactness. Every score is the float32 product of two rows, computed in blocks of identical
-    shape on every pass, so every pass sees the same floats. The first pass counts all scores
+    Exactness. Every score is the exact cosine of two rows on the grid of
+    :mod:`tripletkit._exact`, a float64 product that no block shape, thread count, BLAS kernel or
+    process can round differently, so every pass sees the same values. The first pass counts all scores
     into ``2**19`` bins of width ``2**-18``, keeps every genuine score (they are few) and keeps
     the highest impostor scores (as many as the operating points and the bootstrap window
     need, within the memory budget). Counts are exact, so FMR and FNMR are exact at every bin
@@ -1663,8 +1645,8 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     blocks = _Blocks(x, codes, gcodes, block_rows, memory_budget)
     workers = default_workers(blocks, memory_budget) if workers is None else _check_workers(workers)
     workers = min(workers, len(blocks.block_starts()))
-    # each worker keeps up to 3 times its part of keep, impostor scores of 16 bytes, before it trims them
-    fits = workers * 3 * 16 * _worker_keep(keep, workers) <= _KEEP_SHARE * memory_budget
+    # each worker keeps up to 3 times its part of keep before it trims them
+    fits = workers * 3 * _BYTES_PER_KEPT * _worker_keep(keep, workers) <= _KEEP_SHARE * memory_budget
     top = _TopImpostors(keep, n_imp, chunk) if fits else None
     runner = _BLOCK_RUNNER.get()
     if runner is None:
