@@ -66,18 +66,32 @@ def test_hit_matrix_by_hand():
     assert ap.tolist() == pytest.approx([5 / 9, 0.0])
 
 
-def test_self_is_dropped_even_among_ties():
-    # four identical rows: faiss may return the query anywhere among its ties
+def test_ties_rank_by_row_and_self_is_dropped():
+    # four identical rows: every score ties, so the ranking is by row position without the query;
+    # worked out by hand: queries 0 and 1 find their identity-mate first, 2 and 3 find row 0 first
     x = np.tile(np.array([[1.0, 0.0]], np.float32), (4, 1))
-    ids = np.array([[2, 0, 1, 3], [1, 0, 2, 3]])
-    scores = np.ones((2, 4), np.float32)
-    others = R._drop_self(ids, scores, np.array([0, 1]))
-    assert others.tolist() == [[1, 2, 3], [0, 2, 3]]
-    # the query missing from its own results (more ties than k): the last result goes
-    others = R._drop_self(np.array([[3, 1]]), np.ones((1, 2)), np.array([0]))
-    assert others.tolist() == [[1]]
-    out = retrieval_metrics(x, [0, 0, 1, 1], ks=(1,))
+    out = retrieval_metrics(x, [0, 0, 1, 1], ks=(1, 2))
     assert out["queries"] == 4
+    assert out["recall_at_k"] == {"1": 0.5, "2": 0.5}
+    assert out["r_precision"] == 0.5 and out["map_at_r"] == 0.5
+    out = retrieval_metrics(x, [0, 0, 1, 1], ks=(3,))
+    assert out["recall_at_k"] == {"3": 1.0}
+
+
+def test_float32_preselection_is_widened_to_the_exact_ranking(rng):
+    # rows that differ in the last float32 bits: the float32 order is noise, the exact cosines
+    # decide; the result equals the brute force over exact cosines whatever the block size
+    from tripletkit._exact import snap
+
+    base = rng.standard_normal(8)
+    x = base + 1e-7 * rng.standard_normal((60, 8))
+    x = (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32)
+    labels = rng.integers(0, 6, 60)
+    rec, rp, ap, q = brute_force(snap(x), labels, (1, 3))
+    for rows in (1, 7, 60):
+        out = retrieval_metrics(x, labels, ks=(1, 3), block_rows=rows)
+        assert out["recall_at_k"] == rec  # same rankings; the means below differ only in summation order
+        assert out["r_precision"] == pytest.approx(rp, abs=1e-12) and out["map_at_r"] == pytest.approx(ap, abs=1e-12)
 
 
 def test_invariant_to_row_order_and_label_names(rng):

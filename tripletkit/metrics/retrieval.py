@@ -1,10 +1,15 @@
 """Retrieval metrics, each query left out of its own gallery: Recall@K, R-precision, MAP@R.
 
-Every row is a query against all other rows (the gallery), ranked by cosine similarity with an
-exact faiss inner-product index (``faiss.IndexFlatIP``) searched in blocks of queries. For a query
-of identity c, ``R`` is the number of *other* rows of identity c. Queries with ``R = 0`` (the
-only row of their identity) have nothing to retrieve: they are skipped and counted in
-``skipped_queries``.
+Every row is a query against all other rows (the gallery), ranked by cosine similarity, ties by
+row position (lower first). Cosines are the exact ones of :mod:`tripletkit._exact`: an exact
+faiss inner-product index (``faiss.IndexFlatIP``, float32) only pre-selects a few more
+neighbours than the ranking needs, their exact cosines decide the order, and a query whose
+pre-selection cannot be shown to hold its whole ranking (the exact score at the needed depth is
+not above the last float32 score plus :func:`tripletkit._exact.slack`) is searched again deeper.
+The rankings are therefore those of a brute force over exact cosines, whatever the BLAS or the
+block size. For a query of identity c, ``R`` is the number of *other* rows of identity c.
+Queries with ``R = 0`` (the only row of their identity) have nothing to retrieve: they are
+skipped and counted in ``skipped_queries``.
 
 * ``recall_at_k[K]``: share of queries with at least one row of their identity among the K
   nearest others (the convention of metric-learning papers, e.g. Oh Song et al., CVPR 2016;
@@ -13,11 +18,6 @@ only row of their identity) have nothing to retrieve: they are skipped and count
   nearest others.
 * ``map_at_r``: mean over queries of ``(1/R) * sum_{i=1..R} P(i) * rel(i)`` with ``P(i)`` the
   precision among the first i results and ``rel(i)`` = 1 when result i shares the identity.
-
-Ties. Neighbours with equal scores are ranked by row position (lower first) within what faiss
-returns; at the cut-off (the K-th or R-th place) faiss decides which of several tied rows are
-returned. With continuous embeddings exact ties are rare; with duplicated rows they are not, and a
-metric can then move by the share of queries whose cut-off falls inside a tie.
 
 References
 ----------
@@ -38,6 +38,7 @@ import faiss
 import numpy as np
 
 from .._errors import TripletkitError, TripletkitWarning
+from .._exact import pair_cosines, slack, snap
 from .._validate import as_codes, as_embeddings
 
 __all__ = ["retrieval_metrics", "DEFAULT_KS"]
@@ -55,20 +56,49 @@ def _check_ks(ks):
     return vals
 
 
-def _drop_self(ids, scores, queries):
-    """Remove each query from its own result row and rank ties by row position.
+def _ranked(index, x, snapped, queries, depth, eps):
+    """The ``depth`` nearest other rows of each query, by exact cosine (descending), then row.
 
-    ``ids``/``scores``: (q, k+1) faiss results; ``queries``: (q,) the query rows. Returns the
-    (q, k) neighbour ids, best first.
+    Parameters
+    ----------
+    index : faiss.IndexFlatIP
+        The float32 rows ``x``, for pre-selection.
+    x : ndarray of float32, shape (n, d)
+    snapped : ndarray of float64, shape (n, d)
+        The rows on the exact-cosine grid.
+    queries : ndarray of int64, shape (q,)
+        Query rows.
+    depth : int
+        Ranks needed, at most n - 1.
+    eps : float
+        :func:`tripletkit._exact.slack` of the dimension.
+
+    Returns
+    -------
+    ndarray of int64, shape (q, depth)
     """
-    q, k1 = ids.shape
-    # order by (score descending, row position ascending)
-    order = np.lexsort((ids, -scores), axis=1)
-    ids = np.take_along_axis(ids, order, axis=1)
-    is_self = ids == queries[:, None]
-    # a query missing from its results (more than k rows tie at its own score) loses the last one
-    is_self[~is_self.any(axis=1), k1 - 1] = True
-    return ids[~is_self].reshape(q, k1 - 1)
+    n = snapped.shape[0]
+    out = np.empty((queries.size, depth), np.int64)
+    todo = np.arange(queries.size)
+    k = min(n, depth + 1 + max(8, depth // 4))  # +1: the query itself is among the results
+    while todo.size:
+        q = queries[todo]
+        scores, ids = index.search(x[q], k)
+        ok_id = (ids >= 0) & (ids != q[:, None])
+        exact = np.where(ok_id, 0.0, -np.inf)
+        rows, cols = np.nonzero(ok_id)
+        exact[rows, cols] = pair_cosines(snapped, q[rows], ids[rows, cols])
+        ids = np.where(ok_id, ids, n)  # missing results sort last
+        order = np.lexsort((ids, -exact), axis=1)
+        ids = np.take_along_axis(ids, order, axis=1)[:, :depth]
+        kth = np.take_along_axis(exact, order, axis=1)[:, depth - 1]
+        # a row not returned scores at most the last float32 score, so its exact cosine is at
+        # most that plus eps: the ranking is complete when the depth-th exact score is above it
+        done = (kth > scores[:, -1].astype(np.float64) + eps) if k < n else np.ones(todo.size, bool)
+        out[todo[done]] = ids[done]
+        todo = todo[~done]
+        k = min(n, 2 * k)
+    return out
 
 
 def _hits_metrics(hits, r, ks):
@@ -95,7 +125,7 @@ def retrieval_metrics(embeddings, labels, *, ks=DEFAULT_KS, memory_budget=256 * 
     ks : sequence of int, default (1, 5, 10)
         Cut-offs for Recall@K.
     memory_budget : int, default 256 MiB
-        Bytes for one block of search results (12 bytes per returned neighbour).
+        Bytes for one block of search results (about 40 bytes per returned neighbour).
     block_rows : int, optional
         Queries per faiss search, overriding ``memory_budget``.
 
@@ -129,6 +159,8 @@ def retrieval_metrics(embeddings, labels, *, ks=DEFAULT_KS, memory_budget=256 * 
 
     index = faiss.IndexFlatIP(d)
     index.add(x)
+    snapped = snap(x)
+    eps = slack(d)
     # the deepest ranking needed: the largest R or K, plus the query itself, and never beyond n
     order = queries[np.argsort(r_all[queries], kind="stable")]  # similar depths share a block
     hit_k = {k: 0 for k in vals}
@@ -139,15 +171,14 @@ def retrieval_metrics(embeddings, labels, *, ks=DEFAULT_KS, memory_budget=256 * 
             rows = int(block_rows)
         else:
             # queries are sorted by R, so the last query of a block needs the deepest search
-            cap = max(1, int(memory_budget // 12))
+            cap = max(1, int(memory_budget // 40))
             rows = max(1, cap // (min(n - 1, max(int(r_all[order[start]]), vals[-1])) + 1))
             while rows > 1 and rows * (min(n - 1, max(int(r_all[order[min(order.size, start + rows) - 1]]),
                                                       vals[-1])) + 1) > cap:
                 rows //= 2
         block = order[start : start + rows]
         depth = min(n - 1, max(int(r_all[block].max()), vals[-1]))
-        scores, ids = index.search(x[block], depth + 1)
-        others = _drop_self(ids, scores, block)
+        others = _ranked(index, x, snapped, block, depth, eps)
         hits = codes[others] == codes[block][:, None]
         rec, rprec, ap = _hits_metrics(hits, r_all[block], vals)
         for k in vals:
