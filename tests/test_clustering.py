@@ -58,6 +58,36 @@ def test_kmeans_is_seeded_and_in_range(rng):
     assert a.min() >= 0 and a.max() < 10 and a.shape == (80,)
 
 
+def test_nearest_centroid_equals_brute_force_over_exact_cosines(rng):
+    # brute-force twin: argmax of the exact cosines (a float64 product of the snapped rows),
+    # ties to the lower centroid; centroids 3 and 4 differ only in float32 noise, so the
+    # float32 pre-selection cannot tell them apart and must widen
+    from tripletkit._exact import snap
+
+    x, _ = blobs(rng, 6, 30, noise=0.8)
+    c = x[[0, 40, 80, 100, 100, 150]].copy()
+    c[4] += np.float32(3e-8) * rng.standard_normal(c.shape[1]).astype(np.float32)
+    c /= np.linalg.norm(c, axis=1, keepdims=True)
+    near = x[0] + np.float32(3e-8) * rng.standard_normal((6, x.shape[1])).astype(np.float32)
+    near /= np.linalg.norm(near, axis=1, keepdims=True)  # six centroids within float32 noise
+    for cents in (c, near):
+        assign, score = C._nearest(x, snap(x), cents, chunk=37)
+        exact = snap(x) @ snap(cents).T
+        assert np.array_equal(assign, np.argmax(exact, axis=1))
+        assert np.array_equal(score, exact.max(axis=1))
+
+
+def test_kmeans_ends_at_a_fixed_point(rng):
+    # Lloyd's fixed point (Dhillon and Modha 2001): every row sits with its nearest centroid and
+    # every centroid is its rows' re-normalised mean
+    x, labels = blobs(rng, 6, 15, noise=0.7)
+    assign = C.spherical_kmeans(x, 6, seed=4, niter=200)
+    means = np.stack([x[assign == j].astype(np.float64).sum(axis=0) for j in range(6)])
+    means /= np.linalg.norm(means, axis=1, keepdims=True)
+    again, _ = C._nearest(x, C.snap(x), means.astype(np.float32))
+    assert np.array_equal(again, assign)
+
+
 def test_relabelling_identities_changes_nothing(rng):
     x, labels = blobs(rng, 8, 10, noise=0.5)
     a = C.clustering_metrics(x, labels, seed=2)

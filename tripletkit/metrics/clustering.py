@@ -1,8 +1,10 @@
 """Clustering quality: spherical k-means with k = number of identities, scored by purity, NMI, ARI.
 
-The embeddings are clustered with faiss k-means on the unit sphere (``faiss.Kmeans``,
-``spherical=True``: centroids are re-normalised after each update, and points go to the centroid
-of highest inner product), seeded, with k equal to the number of identities. The clusters are
+The embeddings are clustered with spherical k-means (Lloyd's iterations on the unit sphere:
+points go to the centroid of highest cosine, centroids are the re-normalised means of their
+points; Dhillon and Modha 2001), seeded, with k equal to the number of identities. Cosines are
+the exact ones of :mod:`tripletkit._exact` (faiss only pre-selects the nearest centroids), so
+the clusters are the same whatever the BLAS or thread count. The clusters are
 compared with the identities through their contingency table, computed here with numpy (a
 sparse table: only the non-empty cells are stored, so many identities cost O(n) memory).
 
@@ -22,18 +24,20 @@ References
 .. [2] A. Strehl and J. Ghosh, "Cluster ensembles -- a knowledge reuse framework for combining
    multiple partitions", JMLR 3, 2002 (NMI).
 .. [3] L. Hubert and P. Arabie, "Comparing partitions", Journal of Classification 2, 1985 (ARI).
-.. [4] J. Johnson, M. Douze and H. Jegou, "Billion-scale similarity search with GPUs", IEEE
-   Transactions on Big Data, 2019 (faiss k-means).
+.. [4] I. S. Dhillon and D. S. Modha, "Concept decompositions for large sparse text data using
+   clustering", Machine Learning 42, 2001 (spherical k-means).
 """
 
 from __future__ import annotations
 
+import math
 import warnings
 
 import faiss
 import numpy as np
 
 from .._errors import TripletkitError, TripletkitWarning
+from .._exact import slack, snap
 from .._validate import as_codes, as_embeddings, check_same_length
 
 __all__ = ["clustering_metrics", "spherical_kmeans", "contingency", "purity", "nmi", "ari", "rand_index"]
@@ -173,7 +177,7 @@ def rand_index(labels_true, labels_pred):
 
 
 def spherical_kmeans(embeddings, k, *, seed=0, niter=25, nredo=1):
-    """Assign each unit vector to one of ``k`` spherical k-means clusters (faiss).
+    """Assign each unit vector to one of ``k`` spherical k-means clusters.
 
     Parameters
     ----------
@@ -182,28 +186,101 @@ def spherical_kmeans(embeddings, k, *, seed=0, niter=25, nredo=1):
     k : int
         Number of clusters, 1 <= k <= n.
     seed : int, default 0
-        Seed of faiss's initialisation (random choice of k points).
+        Seed of the initialisation (k distinct rows drawn at random).
     niter : int, default 25
-        Lloyd iterations.
+        Most Lloyd iterations (fewer when the assignment stops changing).
     nredo : int, default 1
-        Restarts; faiss keeps the run with the best objective.
+        Restarts (seeds ``[seed, r]``); the run with the highest sum of cosines is kept.
 
     Returns
     -------
     ndarray of int64, shape (n,)
-        Cluster of each row (highest inner product with the final centroids).
+        Cluster of each row: the centroid of highest exact cosine (ties: the lower cluster).
+
+    Notes
+    -----
+    An empty cluster takes the row farthest from its own centroid (lowest cosine, ties: lower
+    row) among clusters of two rows or more, so every cluster keeps at least one row.
     """
     x = as_embeddings(embeddings)
     n, d = x.shape
     if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or not (1 <= k <= n):
         raise TripletkitError(f"k must be a whole number between 1 and the {n} rows, got {k!r}")
-    # min_points_per_centroid=1: k = number of identities is far more clusters than faiss's
-    # default (39 points each) expects, which only prints a warning
-    km = faiss.Kmeans(d, int(k), niter=int(niter), nredo=int(nredo), seed=int(seed), spherical=True,
-                      verbose=False, min_points_per_centroid=1, max_points_per_centroid=max(256, n))
-    km.train(x)
-    _, assign = km.index.search(x, 1)
-    return assign[:, 0].astype(np.int64)
+    snapped = snap(x)
+    best, best_objective = None, -np.inf
+    for restart in range(int(nredo)):
+        rng = np.random.default_rng([int(seed), restart])
+        assign, score = _lloyd(x, snapped, int(k), rng, int(niter))
+        objective = math.fsum(score.tolist())
+        if objective > best_objective:
+            best, best_objective = assign, objective
+    return best
+
+
+def _lloyd(x, snapped, k, rng, niter):
+    """One seeded run: (assignment, exact cosine of each row to its centroid)."""
+    centroids = x[np.sort(rng.choice(x.shape[0], k, replace=False))]
+    assign, score = _nearest(x, snapped, centroids)
+    for _ in range(niter):
+        centroids = _centroids(x, assign, score, centroids)
+        new, score = _nearest(x, snapped, centroids)
+        if np.array_equal(new, assign):
+            break
+        assign = new
+    return assign, score
+
+
+def _nearest(x, snapped, centroids, chunk=4096):
+    """Centroid of highest exact cosine for every row (ties: lower centroid), and that cosine.
+
+    faiss pre-selects the ``m`` best centroids by float32 score; a row's choice is final when its
+    best exact cosine is above the ``m``-th float32 score plus the slack (no other centroid can
+    reach it), else the row is searched again with more centroids.
+    """
+    n, d = x.shape
+    k = centroids.shape[0]
+    index = faiss.IndexFlatIP(d)
+    index.add(np.ascontiguousarray(centroids, dtype=np.float32))
+    cs = snap(centroids)
+    eps = slack(d)
+    assign = np.empty(n, np.int64)
+    score = np.empty(n, np.float64)
+    for s in range(0, n, chunk):
+        todo = np.arange(s, min(n, s + chunk))
+        m = min(k, 4)
+        while todo.size:
+            top, ids = index.search(x[todo], m)
+            exact = np.einsum("ij,ikj->ik", snapped[todo], cs[ids])
+            order = np.lexsort((ids, -exact), axis=1)[:, 0]
+            pick = np.arange(todo.size)
+            done = np.ones(todo.size, bool) if m == k else exact[pick, order] > top[:, -1] + eps
+            assign[todo[done]] = ids[pick, order][done]
+            score[todo[done]] = exact[pick, order][done]
+            todo = todo[~done]
+            m = min(k, 4 * m)
+    return assign, score
+
+
+def _centroids(x, assign, score, previous):
+    """Re-normalised means of the clusters; empty clusters are first given a far row."""
+    k = previous.shape[0]
+    assign, score = assign.copy(), score.copy()
+    sizes = np.bincount(assign, minlength=k)
+    for empty in np.flatnonzero(sizes == 0):
+        movable = np.flatnonzero(sizes[assign] >= 2)
+        row = movable[np.lexsort((movable, score[movable]))[0]]
+        sizes[assign[row]] -= 1
+        assign[row] = empty
+        sizes[empty] = 1
+        score[row] = 1.0  # it is its cluster's centroid now
+    order = np.argsort(assign, kind="stable")
+    starts = np.flatnonzero(np.r_[True, assign[order][1:] != assign[order][:-1]])
+    sums = np.add.reduceat(x[order].astype(np.float64), starts, axis=0)
+    norms = np.sqrt(np.einsum("ij,ij->i", sums, sums))
+    out = previous.astype(np.float32, copy=True)
+    ok = norms > 0  # a cluster whose rows cancel keeps its centroid
+    out[ok] = (sums[ok] / norms[ok, None]).astype(np.float32)
+    return out
 
 
 def clustering_metrics(embeddings, labels, *, seed=0, niter=25, nredo=1):
