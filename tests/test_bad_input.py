@@ -682,10 +682,11 @@ def test_effective_dimension_memory_does_not_grow_with_d_squared(rng):
     finally:
         tracemalloc.stop()
     # reference: participation ratio from the eigenvalues of the (n, n) Gram matrix of the
-    # centred rows, which has the same non-zero eigenvalues as the (d, d) scatter matrix
+    # centred rows, which has the same non-zero eigenvalues as the (d, d) scatter matrix; ours
+    # is computed in integers on a 2**-20 grid (relative to the largest coordinate), hence rel
     Xc = X.astype(np.float64) - X.astype(np.float64).mean(axis=0)
     lam = np.linalg.eigvalsh(Xc @ Xc.T)
-    assert value == pytest.approx(lam.sum() ** 2 / (lam**2).sum(), rel=1e-9)
+    assert value == pytest.approx(lam.sum() ** 2 / (lam**2).sum(), rel=1e-5)
     assert peak < 8 * 2**20  # the (d, d) float64 scatter alone would be 32 MB
 
 

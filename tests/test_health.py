@@ -13,22 +13,35 @@ def unit_rows(rng, n, d, k):
 
 
 def test_mean_impostor_cosine_matches_every_pair(rng):
+    # brute-force twin over every pair of the exact cosines (snapped rows; math.fsum, exactly
+    # rounded, then one division), and within float32 noise of the plain float64 product
+    import math
+
+    from tripletkit._exact import snap
+
     x, labels = unit_rows(rng, 300, 8, 30)
-    s = x.astype(np.float64) @ x.astype(np.float64).T
+    s = snap(x) @ snap(x).T
     i, j = np.triu_indices(300, 1)
     imp = labels[i] != labels[j]
-    brute = s[i[imp], j[imp]].mean()
-    assert H.mean_impostor_cosine(x, labels) == pytest.approx(brute, abs=1e-12)
-    assert H.mean_impostor_cosine(x, labels, block_rows=7) == pytest.approx(brute, abs=1e-12)
+    brute = math.fsum(s[i[imp], j[imp]].tolist()) / int(imp.sum())
+    assert H.mean_impostor_cosine(x, labels) == pytest.approx(brute, abs=1e-15)
+    assert H.mean_impostor_cosine(x, labels, block_rows=7) == H.mean_impostor_cosine(x, labels)
+    plain = (x.astype(np.float64) @ x.astype(np.float64).T)[i[imp], j[imp]].mean()
+    assert H.mean_impostor_cosine(x, labels) == pytest.approx(plain, abs=1e-7)
 
 
 def test_effective_dimension_is_the_participation_ratio_of_the_eigenvalues(rng):
     x = rng.standard_normal((500, 6)) * np.array([3.0, 2.0, 1.0, 0.5, 0.2, 0.1])
     x = (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32)
-    lam = np.linalg.eigvalsh(np.cov(x.astype(np.float64), rowvar=False))
+    # reference: numpy's eigvalsh of the covariance of the rows on the 2**-20 grid used by the
+    # integer arithmetic (and of the raw rows, within that grid's rounding)
+    grid = np.rint(x.astype(np.float64) * 2.0**20) / 2.0**20
+    lam = np.linalg.eigvalsh(np.cov(grid, rowvar=False))
     brute = lam.sum() ** 2 / (lam**2).sum()
     assert H.effective_dimension(x) == pytest.approx(brute, rel=1e-10)
-    assert H.effective_dimension(x, block_rows=33) == pytest.approx(brute, rel=1e-10)
+    assert H.effective_dimension(x, block_rows=33) == H.effective_dimension(x)
+    lam = np.linalg.eigvalsh(np.cov(x.astype(np.float64), rowvar=False))
+    assert H.effective_dimension(x) == pytest.approx(lam.sum() ** 2 / (lam**2).sum(), rel=1e-5)
 
 
 def test_effective_dimension_of_known_shapes(rng):
