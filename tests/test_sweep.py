@@ -144,10 +144,11 @@ def _nonzero(counts):
 
 
 def test_weighted_counts_equal_explicit_resample(rng):
-    # Small integer vectors: every dot product is an exact float32 integer, so both sides see the
-    # same scores (and ties, which the weighted counts must keep as ties).
+    # Signed unit axes: every cosine is -1, 0 or 1, exactly, so both sides see the same scores
+    # (and many ties, which the weighted counts must keep as ties).
     labels = np.repeat(np.arange(5), [3, 2, 4, 1, 3])
-    E = rng.integers(-2, 3, size=(labels.size, 3)).astype(np.float32)
+    E = np.eye(3, dtype=np.float32)[rng.integers(0, 3, labels.size)] * rng.choice([-1, 1], labels.size)[:, None]
+    E = E.astype(np.float32)
     ps = _PairScores(E, labels)
     for m in (np.ones(5), np.array([2, 0, 1, 3, 0]), np.array([0, 5, 0, 0, 0]), np.array([1, 1, 0, 2, 1])):
         got = _nonzero(ps.counts(m.astype(np.float64)))
@@ -165,8 +166,9 @@ def test_full_sample_values_agree_with_verification_module(rng):
     ps = _PairScores(E, labels)
     ref = verify_all_pairs(E, labels, fmr_targets=(0.01, 0.05), bootstrap=0)
     counts = ps.counts()
-    assert equal_error_rate(counts)[0] == pytest.approx(ref["eer"], abs=1e-9)
-    assert fnmr_at_fmr(counts, 0.01)[0] == pytest.approx(ref["fnmr_at_fmr"]["0.01"]["fnmr"], abs=1e-9)
+    # both use the exact cosines, so the values are equal, not merely close
+    assert equal_error_rate(counts) == (ref["eer"], ref["eer_threshold"])
+    assert fnmr_at_fmr(counts, 0.01) == (ref["fnmr_at_fmr"]["0.01"]["fnmr"], ref["fnmr_at_fmr"]["0.01"]["threshold"])
     assert int(counts.genuine.sum()) == ref["genuine_pairs"] and int(counts.impostor.sum()) == ref["impostor_pairs"]
 
 

@@ -23,7 +23,8 @@ runs share (which identities happen to be in the evaluation set) cancels from th
 verdict says the difference is larger than the noise when the interval excludes 0.
 
 How a replicate is scored (exact): every pair score of the held-out set is computed once per run
-(float32 products of unit rows, as in the verification module) and counted at each distinct value.
+(the exact cosines of :mod:`tripletkit._exact`, as in the verification module) and counted at
+each distinct value.
 In a replicate a genuine pair of identity i carries weight m_i (the pairs inside each drawn copy)
 and an impostor pair of identities i, j carries weight m_i * m_j (the pairs between the copies);
 pairs between two copies of one identity are not formed, since they would pair a photo with
@@ -70,6 +71,7 @@ from pathlib import Path
 import numpy as np
 
 from ._errors import TripletkitError, TripletkitWarning
+from ._exact import snap
 from ._io import atomic_path, check_not_input, check_output, jsonable
 from .config import load_config
 from .loss import REGIMES
@@ -78,7 +80,7 @@ from .table import EmbeddingTable, require_pairs
 
 __all__ = ["sweep", "paired_comparison", "parse_primary"]
 
-#: Pair scores held per run by the paired comparison (about 20 bytes each: 400 MB per run at this
+#: Pair scores held per run by the paired comparison (about 24 bytes each: 480 MB per run at this
 #: cap, reached at about 6,300 held-out rows).
 MAX_PAIRS = 20_000_000
 
@@ -143,12 +145,13 @@ def parse_primary(text, fmrs=None, where="primary"):
 class _PairScores:
     """Every pair score of one run's held-out set, grouped by distinct value, with the pair's identities.
 
-    Scores are float32 products of unit rows (as in the verification module). Memory: about 12 bytes
-    per impostor pair, 8 per genuine pair and 8 per distinct score, plus the replicate tail.
+    Scores are the exact cosines of :mod:`tripletkit._exact` (as in the verification module).
+    Memory: about 16 bytes per impostor pair, 12 per genuine pair and 8 per distinct score, plus
+    the replicate tail.
     """
 
     def __init__(self, embeddings, labels):
-        E = np.ascontiguousarray(embeddings, dtype=np.float32)
+        E = snap(np.asarray(embeddings, dtype=np.float32))
         labels = np.asarray(labels, dtype=np.int64)
         n = E.shape[0]
         pairs = n * (n - 1) // 2
@@ -157,12 +160,12 @@ class _PairScores:
                 f"the held-out set has {n} rows ({pairs} pairs); the paired comparison of a sweep holds every "
                 f"pair score and allows at most {MAX_PAIRS}; sweep on a subset of the held-out identities"
             )
-        scores = np.empty(pairs, dtype=np.float32)
+        scores = np.empty(pairs, dtype=np.float64)
         la = np.empty(pairs, dtype=np.int32)
         lb = np.empty(pairs, dtype=np.int32)
         cols = np.arange(n)
         at = 0
-        step = max(1, (1 << 22) // max(n, 1))  # rows per block: about 16 MB of float32 scores
+        step = max(1, (1 << 21) // max(n, 1))  # rows per block: about 16 MB of float64 scores
         for s in range(0, n, step):
             rows = cols[s:s + step]
             block = E[rows] @ E.T
