@@ -715,3 +715,58 @@ def test_exact_cosine_working_set_is_bounded(rng):
     ref = np.einsum("ij,ij->i", X[a].astype(np.float64), X[b].astype(np.float64))
     np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-12)
     assert peak < 32 * 2**20  # now about 100 MB for d = 256
+
+
+# ---------------------------------------------------------------------------------------------
+# two runs racing for one output: exactly one publishes, the other stops with one line
+# ---------------------------------------------------------------------------------------------
+def _race_argv(command, tmp):
+    if command == "mine":
+        return ["mine", good(tmp, n=120, d=8, identities=20), "--out", str(tmp / "out.parquet"), "--quiet"]
+    if command == "score":
+        return ["score", good(tmp, n=120, d=8, identities=20), "--out", str(tmp / "out"), "--quiet",
+                "--bootstrap", "0", "--no-plots", "--no-clustering"]
+    return ["sweep", sweep_config()(tmp), "--out", str(tmp / "out"), "--quiet"]
+
+
+@pytest.mark.parametrize("command", ["mine", "score", "sweep"])
+def test_two_runs_racing_for_one_output(tmp_path, command):
+    argv = _race_argv(command, tmp_path)
+    inputs = _snapshot(tmp_path)
+    # started together: both pass the start-of-run check while the other is still importing or
+    # computing, or the later one already finds the output; either way exactly one may publish
+    procs = [subprocess.Popen([sys.executable, "-m", "tripletkit", *argv], cwd=tmp_path, text=True,
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE) for _ in range(2)]
+    results = [(p.wait(timeout=300), *p.communicate()) for p in procs]
+    codes = sorted(code for code, _, _ in results)
+    assert codes == [0, 2], results
+    _, out, err = next(r for r in results if r[0] == 2)
+    assert out == "" and err.count("\n") == 1, err
+    assert re.match(r"error: output '.*out(\.parquet)?' already exists(: it appeared while this run was writing "
+                    r"\(another run with the same output\?\); nothing was written)?, pass --force|"
+                    r"error: output '.*out(\.parquet)?' already exists; pass --force", err), err
+    published = set(_snapshot(tmp_path)) - set(inputs)
+    assert not [p for p in published if Path(p).name.startswith(".")]  # no temporary left by the loser
+    if command == "mine":
+        assert published == {"out.parquet", "out.duplicates.parquet"}
+        assert pq.read_table(tmp_path / "out.parquet").num_rows > 0
+    else:
+        assert json.loads((tmp_path / "out" / ("report.json" if command == "score" else "sweep.json")).read_text())
+
+
+def test_demo_refuses_an_output_folder_that_appears_meanwhile(tmp_path, monkeypatch, capsys):
+    from tripletkit import demo
+
+    out = tmp_path / "demo"
+    stage = demo._stage
+
+    def stage_and_race(progress, text):
+        stage(progress, text)
+        if text.startswith("scoring the held-out"):
+            out.mkdir()  # another run's folder, created (empty) while this demo is half way
+
+    monkeypatch.setattr(demo, "_stage", stage_and_race)
+    with pytest.raises(TripletkitError, match=r"^output '.*demo' already exists: it appeared while this run was "
+                                              r"writing"):
+        demo.run_demo(out, quiet=True, sweep=False)
+    assert os.listdir(tmp_path) == ["demo"] and os.listdir(out) == []

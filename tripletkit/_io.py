@@ -1,12 +1,16 @@
-"""Atomic output: write to a temporary sibling, then rename into place.
+"""Atomic, no-replace output: write to a temporary sibling, then publish it under its name.
 
 An interrupted run leaves no half-written output and no temporary file; an existing output is
-never replaced unless ``force`` is set. Used by every writer in the package.
+never replaced unless ``force`` is set, including one that appears while the run is writing
+(another run with the same output): publishing itself refuses to replace. Used by every writer
+in the package.
 """
 
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import errno
 import math
 import os
 import shutil
@@ -15,7 +19,7 @@ from pathlib import Path
 
 from ._errors import TripletkitError
 
-__all__ = ["atomic_path", "check_output", "check_not_input", "jsonable"]
+__all__ = ["atomic_path", "atomic_paths", "check_output", "check_not_input", "jsonable"]
 
 
 def _inside(inner, outer):
@@ -92,9 +96,190 @@ def _umask():
     return mask
 
 
+# ---------------------------------------------------------------------------------------------
+# no-replace publishing
+# ---------------------------------------------------------------------------------------------
+class _Unsupported(Exception):
+    """This way of publishing is not available here (filesystem or platform); try the next."""
+
+
+_AT_FDCWD = -100
+_RENAME_NOREPLACE = 1
+
+
+def _renameat2():
+    """libc's ``renameat2`` (Linux, glibc >= 2.28), or None."""
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).renameat2
+    except (AttributeError, OSError):
+        return None
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    fn.restype = ctypes.c_int
+    return fn
+
+
+def _publish_by_link(tmp, path):
+    """Hard-link ``tmp`` as ``path`` (fails with EEXIST if ``path`` exists), then drop ``tmp``.
+
+    Files only: a folder cannot be hard-linked.
+    """
+    if tmp.is_dir():
+        raise _Unsupported
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        raise
+    except OSError as exc:
+        if exc.errno in (errno.EPERM, errno.EOPNOTSUPP, errno.ENOTSUP, errno.EXDEV, errno.EMLINK, errno.ENOSYS):
+            raise _Unsupported from None  # a filesystem without hard links (FAT, some network mounts)
+        raise
+    tmp.unlink()
+
+
+def _publish_by_rename_noreplace(tmp, path):
+    """``renameat2(..., RENAME_NOREPLACE)``: one atomic rename that fails with EEXIST if ``path`` exists."""
+    fn = _renameat2()
+    if fn is None:
+        raise _Unsupported
+    if fn(_AT_FDCWD, os.fsencode(tmp), _AT_FDCWD, os.fsencode(path), _RENAME_NOREPLACE) == 0:
+        return
+    err = ctypes.get_errno()
+    if err in (errno.EINVAL, errno.ENOSYS, errno.EOPNOTSUPP, errno.ENOTSUP):
+        raise _Unsupported  # an old kernel, or a filesystem without the flag
+    raise OSError(err, os.strerror(err), str(path))
+
+
+def _publish_by_claim(tmp, path):
+    """Claim the name with an exclusive create (``O_EXCL`` or ``mkdir``), then rename onto the claim.
+
+    The portable fallback: the claim fails if ``path`` exists, and the rename replaces only our own
+    empty claim (a folder that is no longer empty makes it fail). Readers may briefly see an empty
+    file or folder at ``path``.
+    """
+    if tmp.is_dir():
+        os.mkdir(path)
+    else:
+        os.close(os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600))
+    try:
+        os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            (os.rmdir if tmp.is_dir() else os.unlink)(path)
+        if exc.errno in (errno.ENOTEMPTY, errno.EEXIST):
+            raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), str(path)) from None
+        raise
+
+
+#: Ways to publish without replacing, tried in order until one is available.
+_NO_REPLACE = (_publish_by_link, _publish_by_rename_noreplace, _publish_by_claim)
+
+
+def _publish_no_replace(tmp, path):
+    for publish in _NO_REPLACE:
+        try:
+            return publish(tmp, path)
+        except _Unsupported:
+            continue
+    raise AssertionError("_publish_by_claim is always available")
+
+
+def _publish_replacing(tmp, path, parent):
+    """Publish ``tmp`` as ``path``, replacing what is there (``force``)."""
+    if path.is_dir() and not path.is_symlink():
+        # Move the old folder aside first so the swap is as short as possible.
+        old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old-", dir=parent))
+        old.rmdir()
+        path.rename(old)
+        os.replace(tmp, path)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.replace(tmp, path)
+
+
+def _remove(path):
+    if path.is_dir() and not path.is_symlink():
+        shutil.rmtree(path, ignore_errors=True)
+    else:
+        with contextlib.suppress(FileNotFoundError):
+            path.unlink()
+
+
+def _appeared(path):
+    return TripletkitError(f"output {str(path)!r} already exists: it appeared while this run was writing (another "
+                           "run with the same output?); nothing was written, pass --force (force=True) to replace it")
+
+
+@contextlib.contextmanager
+def atomic_paths(paths, force=False, directory=False):
+    """Yield temporary paths beside ``paths``; on success publish them all, or none.
+
+    Parameters
+    ----------
+    paths : sequence of str or Path
+        Final output locations, published in this order.
+    force : bool, default False
+        Replace existing outputs.
+    directory : bool or sequence of bool, default False
+        Per path (or for all): yield a fresh empty temporary folder instead of a file name.
+
+    Without ``force`` every output is published without replacing: a hard link (files), else an
+    atomic ``renameat2`` with ``RENAME_NOREPLACE`` (Linux), else an exclusive claim of the name.
+    If an output appeared since the start (another run writing the same output), the run stops
+    with a :class:`TripletkitError`, its temporary outputs are removed and the outputs it already
+    published in this call are withdrawn, so two runs racing for one output never both succeed
+    and never mix their files. On any exception (including KeyboardInterrupt) the temporary
+    outputs are removed and previous outputs, if any, are left untouched.
+    """
+    paths = [Path(p) for p in paths]
+    kinds = [bool(directory)] * len(paths) if isinstance(directory, bool) else [bool(d) for d in directory]
+    if len(kinds) != len(paths):
+        raise ValueError("directory must be a bool or one bool per path")
+    paths = [check_output(p, force=force, directory=d) for p, d in zip(paths, kinds)]
+    tmps = []
+    try:
+        for path, is_dir in zip(paths, kinds):
+            parent = path.parent if str(path.parent) else Path(".")
+            prefix = f".{path.name}.tmp-"
+            if is_dir:
+                tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
+                tmps.append(tmp)
+                tmp.chmod(0o777 & ~_umask())
+            else:
+                fd, name = tempfile.mkstemp(prefix=prefix, dir=parent)
+                os.close(fd)
+                tmp = Path(name)
+                tmps.append(tmp)
+                # mkstemp creates 0600; give the output the permissions an ordinary open() would.
+                tmp.chmod(0o666 & ~_umask())
+        yield list(tmps)
+        published = []  # (path, identity of what we published there)
+        try:
+            for path, tmp in zip(paths, tmps):
+                st = tmp.lstat()
+                if force:
+                    _publish_replacing(tmp, path, path.parent if str(path.parent) else Path("."))
+                else:
+                    try:
+                        _publish_no_replace(tmp, path)
+                    except FileExistsError:
+                        raise _appeared(path) from None
+                published.append((path, (st.st_dev, st.st_ino)))
+        except BaseException:
+            for path, ident in published:
+                with contextlib.suppress(OSError):
+                    st = path.lstat()
+                    if (st.st_dev, st.st_ino) == ident:  # still ours: withdraw it
+                        _remove(path)
+            raise
+    finally:
+        for tmp in tmps:  # after success only a hard link's source is gone; a failure leaves them all
+            if tmp.exists() or tmp.is_symlink():
+                _remove(tmp)
+
+
 @contextlib.contextmanager
 def atomic_path(path, force=False, directory=False):
-    """Yield a temporary path beside ``path``; on success rename it to ``path``.
+    """Yield a temporary path beside ``path``; on success publish it as ``path``.
 
     Parameters
     ----------
@@ -105,42 +290,14 @@ def atomic_path(path, force=False, directory=False):
     directory : bool, default False
         Yield a fresh empty temporary folder instead of a file name.
 
-    On any exception (including KeyboardInterrupt) the temporary output is removed and the
-    previous output, if any, is left untouched.
+    The output is published without replacing anything unless ``force`` is set, so an output that
+    appeared while this run was writing (another run with the same output) is refused with a
+    :class:`TripletkitError` (see :func:`atomic_paths`). On any exception (including
+    KeyboardInterrupt) the temporary output is removed and the previous output, if any, is left
+    untouched.
     """
-    path = check_output(path, force=force, directory=bool(directory))
-    parent = path.parent if str(path.parent) else Path(".")
-    prefix = f".{path.name}.tmp-"
-    if directory:
-        tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
-        tmp.chmod(0o777 & ~_umask())
-    else:
-        fd, name = tempfile.mkstemp(prefix=prefix, dir=parent)
-        os.close(fd)
-        tmp = Path(name)
-        # mkstemp creates 0600; give the output the permissions an ordinary open() would.
-        tmp.chmod(0o666 & ~_umask())
-    try:
+    with atomic_paths([path], force=force, directory=directory) as (tmp,):
         yield tmp
-        if path.exists():
-            if path.is_dir() and not path.is_symlink():
-                # Move the old folder aside first so the swap is as short as possible.
-                old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old-", dir=parent))
-                old.rmdir()
-                path.rename(old)
-                os.replace(tmp, path)
-                shutil.rmtree(old, ignore_errors=True)
-            else:
-                os.replace(tmp, path)
-        else:
-            os.replace(tmp, path)
-    except BaseException:
-        if tmp.is_dir():
-            shutil.rmtree(tmp, ignore_errors=True)
-        else:
-            with contextlib.suppress(FileNotFoundError):
-                tmp.unlink()
-        raise
 
 
 def jsonable(obj):

@@ -100,7 +100,7 @@ import pyarrow.parquet as pq
 from tqdm import tqdm
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_output
+from ._io import atomic_paths, check_output
 from .config import MiningConfig, override
 from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
                     faiss_threads, query_block_rows, resolve_kind)
@@ -1267,11 +1267,9 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
             raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     table = as_table(source, **(table_options or {}))
     _guard_memory(table, cfg, return_triplets)
-    with contextlib.ExitStack() as stack:
-        tmp_out = tmp_dup = None
-        if out is not None:
-            tmp_out = stack.enter_context(atomic_path(out, force=force))
-            tmp_dup = stack.enter_context(atomic_path(dup_out, force=force))
+    # The triplet table and its duplicate report are published together or not at all.
+    with atomic_paths([] if out is None else [out, dup_out], force=force) as tmps:
+        tmp_out, tmp_dup = tmps or (None, None)
         summary = _mine_table(table, cfg, tmp_out, tmp_dup, quiet=quiet, return_triplets=return_triplets)
     summary.seconds = time.perf_counter() - t0
     if out is not None:
