@@ -44,7 +44,7 @@ import numpy as np
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path
 from ._validate import as_embeddings
-from .config import HeadConfig, MiningConfig
+from .config import HeadConfig, MiningConfig, check_margin
 from .loss import REGIMES, triplet_loss, triplet_loss_grad
 
 __all__ = ["ProjectionHead", "fit_head"]
@@ -457,6 +457,7 @@ def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet
             or not np.isfinite(margin) or margin <= 0:
         raise TripletkitError(f"margin must be a finite number > 0, got {margin!r}")
     margin = float(margin)
+    check_margin(margin, mining_config.distance, "margin")
     train = as_table(train_table)
     if train.n_identities < 2:
         raise TripletkitError("the training table has fewer than 2 identities; a triplet needs a negative")

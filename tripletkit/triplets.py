@@ -13,6 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
+from .config import MAX_DISTANCE, check_margin
 from .table import as_table
 
 __all__ = ["read_triplets", "triplet_loss_report"]
@@ -72,6 +73,8 @@ def triplet_loss_report(triplets, table, *, margin=0.2, distance="squared", soft
     """
     from .loss import score_triplets
 
+    if not soft and distance in MAX_DISTANCE and isinstance(margin, (int, float)):
+        check_margin(margin, distance, "margin")
     trip = read_triplets(triplets) if isinstance(triplets, (str, Path)) else triplets
     emb = as_table(table, **(table_options or {}))
     if len(trip["anchor"]) == 0:
