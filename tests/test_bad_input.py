@@ -298,6 +298,23 @@ def _loss_unknown_ids(tmp):
     return ["loss", trip, src]
 
 
+def _loss_on(**columns):
+    def build(tmp):
+        src = good(tmp)
+        return ["loss", _parquet(tmp / "trip.parquet", **columns), src]
+    return build
+
+
+def _loss_string_table(tmp):
+    src = good(tmp, labels=_labels())
+    table = pq.read_table(src)
+    table = table.set_column(0, "id", pa.array([f"p-{i:04d}" for i in range(24)]))
+    pq.write_table(table, tmp / "strings.parquet")
+    Path(src).unlink()
+    return ["loss", _parquet(tmp / "trip.parquet", anchor=[0, 1], positive=[1, 2], negative=[5, 6]),
+            str(tmp / "strings.parquet")]
+
+
 CASES = [
     # -- files --------------------------------------------------------------------------------
     Case("missing-table", lambda tmp: ["mine", str(tmp / "nothere.parquet"), "--out", str(tmp / "t.parquet")],
@@ -458,6 +475,22 @@ CASES = [
     Case("loss-triplets-missing", lambda tmp: ["loss", str(tmp / "none.parquet"), good(tmp)],
          r"triplet table '.*none\.parquet' does not exist; check the path$"),
     Case("loss-unknown-ids", _loss_unknown_ids, r"999"),
+    # ids of triplet tables follow the rules of embedding tables: 0.7 is no id, and 1.0 is not 1
+    Case("loss-float-ids", _loss_on(anchor=[0.7, 1.2, 20.6], positive=[1, 2, 21], negative=[5, 6, 7]),
+         r"^error: anchor ids of triplet table '.*trip\.parquet' \(column 'anchor'\) have type double; ids are int64 "
+         r"or strings \(as in the embedding table\)$"),
+    Case("loss-whole-float-ids", _loss_on(anchor=[0, 1], positive=[1.0, 2.0], negative=[5, 6]),
+         r"positive ids of triplet table .* have type double"),
+    Case("loss-bool-ids", _loss_on(anchor=[0, 1], positive=[1, 2], negative=[True, False]),
+         r"negative ids of triplet table .* have type bool"),
+    Case("loss-null-ids", _loss_on(anchor=pa.array([0, None], pa.int64()), positive=[1, 2], negative=[5, 6]),
+         r"anchor ids of triplet table .* have 1 null values \(first at row 1\); every row needs an id$"),
+    Case("loss-many-unknown-ids", _loss_on(anchor=[0, 1, 2, 3, 4, 5, 6, 7], positive=[1, 2, 3, 0, 5, 6, 7, 4],
+                                           negative=[999, 998, 997, 996, 995, 994, 8, 999]),
+         r"^error: 7 negative ids are not in the embedding table '.*good\.parquet' \(first: 999, 998, 997, 996, "
+         r"995\); use the table the ids come from$"),
+    Case("loss-integer-ids-for-string-table", _loss_string_table,
+         r"anchor ids are integers but the ids of the embedding table '.*strings\.parquet' are strings"),
 ]
 def _snapshot(root):
     """Every path under ``root`` with its kind, size and modification time."""

@@ -185,3 +185,23 @@ def test_check_summary(tmp_path, rng):
     assert out["rows"] == 6 and out["dim"] == 3 and out["identities"] == 3
     assert out["singletons"] == 1 and out["invalid_rows"] == 1 and out["unit_norm"] is False
     assert out["samples_per_identity"] == {"min": 1, "median": 2.0, "max": 3}
+
+
+def test_positions_take_ids_of_the_table_kind_only():
+    t = EmbeddingTable.from_arrays(np.array([1, 3, 5]), np.array([0, 0, 1]), np.eye(3))
+    assert t.positions(np.array([5, 1])).tolist() == [2, 0]
+    # a float is no id: 0.7 must not become 0, nor 5.0 become 5
+    with pytest.raises(TripletkitError, match=r"^anchor ids have type double; ids are int64 or strings"):
+        t.positions(np.array([0.7, 1.2]), what="anchor ids")
+    with pytest.raises(TripletkitError, match=r"type double"):
+        t.positions(np.array([5.0]))
+    with pytest.raises(TripletkitError, match=r"^ids are strings but the ids of the embedding table are integers"):
+        t.positions(["5"])
+    with pytest.raises(TripletkitError, match=r"mix integers and strings"):
+        t.positions(np.array([5, "a"], dtype=object))
+    s = EmbeddingTable.from_arrays(np.array(["a", "b", "c"]), np.array([0, 0, 1]), np.eye(3))
+    assert s.positions(["c", "a"]).tolist() == [2, 0]
+    with pytest.raises(TripletkitError, match=r"^ids are integers but the ids of the embedding table are strings"):
+        s.positions([1])
+    with pytest.raises(TripletkitError, match=r"^3 ids are not in the embedding table \(first: 'x', 'y'\)"):
+        s.positions(["x", "a", "y", "x"])

@@ -20,7 +20,8 @@ import pyarrow.parquet as pq
 from ._errors import TripletkitError
 from ._io import atomic_path
 
-__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs"]
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
+           "id_array"]
 
 #: Norms within this distance of 1 count as "already unit length".
 UNIT_NORM_TOLERANCE = 1e-3
@@ -239,24 +240,29 @@ class EmbeddingTable:
         return self.label_values[self.labels if rows is None else self.labels[rows]]
 
     def positions(self, ids, what="ids"):
-        """Row positions of ``ids``; an unknown id is an error that names it."""
-        ids = np.asarray(ids)
-        if self.ids.dtype == object:
-            lookup = pa.array(self.ids.tolist(), type=pa.string())
-            query = pa.array([str(v) for v in ids.tolist()], type=pa.string())
-        else:
-            if ids.dtype == object or ids.dtype.kind in "USf":
-                try:
-                    ids = ids.astype(np.int64)
-                except (TypeError, ValueError):
-                    raise TripletkitError(f"{what} are not integers but the table's ids are integers") from None
-            lookup = pa.array(self.ids)
-            query = pa.array(ids.astype(np.int64))
+        """Row positions of ``ids`` (int64 or strings, the kind of the table's ids).
+
+        Ids of another kind (floats, integers for a table of string ids and the reverse) and ids
+        that are not in the table are errors naming the count and the first few.
+        """
+        query = id_array(ids, what)
+        if len(query) == 0:
+            return np.zeros(0, dtype=np.int64)
+        table_strings = self.ids.dtype == object
+        if pa.types.is_string(query.type) != table_strings:
+            kinds = ("strings", "integers") if table_strings else ("integers", "strings")
+            raise TripletkitError(
+                f"{what} are {kinds[1]} but the ids of the embedding table{_of(self.source)} are {kinds[0]}; "
+                "use the ids of the table (the same kind, int64 or string)"
+            )
+        lookup = pa.array(self.ids.tolist(), type=pa.string()) if table_strings else pa.array(self.ids)
         pos = pc.index_in(query, value_set=lookup)
         if pos.null_count:
-            first = query[int(np.flatnonzero(pos.is_null().to_numpy(zero_copy_only=False))[0])].as_py()
+            missing = pc.unique(query.filter(pos.is_null()))
+            first = ", ".join(repr(v) for v in missing.slice(0, 5).to_pylist())
             raise TripletkitError(
-                f"{pos.null_count} {what} are not in the embedding table (first: {first!r})"
+                f"{pos.null_count} {what} are not in the embedding table{_of(self.source)} (first: {first}); use "
+                "the table the ids come from"
             )
         return pos.to_numpy(zero_copy_only=False).astype(np.int64)
 
@@ -279,6 +285,54 @@ class EmbeddingTable:
     def identity_sizes(self):
         """Number of rows per identity code, int64 of shape (k,)."""
         return np.bincount(self.labels, minlength=self.n_identities).astype(np.int64)
+
+
+def _of(source):
+    return f" {str(source)!r}" if source else ""
+
+
+def id_array(ids, what="ids"):
+    """``ids`` as an Arrow array of int64 or strings, the id kinds of the table contract.
+
+    Parameters
+    ----------
+    ids : array-like of shape (n,), pyarrow.Array or ChunkedArray
+    what : str
+        What the ids are, for messages (e.g. ``"anchor ids of triplet table 't.parquet'"``).
+
+    Floats (0.7 is no id, and 1.0 would silently become 1), booleans, nulls and mixed kinds are
+    errors.
+    """
+    if isinstance(ids, (pa.Array, pa.ChunkedArray)):
+        arr = ids
+    else:
+        values = np.asarray(ids)
+        if values.ndim != 1:
+            raise TripletkitError(f"{what} must be a 1-D column of ids, got shape {values.shape}")
+        if values.size == 0:
+            return pa.array([], type=pa.string() if values.dtype.kind in "OUS" else pa.int64())
+        try:
+            arr = pa.array(values.tolist() if values.dtype == object else values)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            raise TripletkitError(f"{what} mix integers and strings; ids are all int64 or all strings") from None
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    t = arr.type
+    if pa.types.is_dictionary(t):
+        arr = arr.cast(t.value_type)
+        t = arr.type
+    if pa.types.is_null(t) or arr.null_count:
+        first = int(np.flatnonzero(arr.is_null().to_numpy(zero_copy_only=False))[0])
+        raise TripletkitError(f"{what} have {arr.null_count} null values (first at row {first}); every row needs an id")
+    if pa.types.is_integer(t):
+        try:
+            return arr.cast(pa.int64())
+        except pa.ArrowInvalid:
+            raise TripletkitError(f"{what} have {t} values above {np.iinfo(np.int64).max}; ids are int64 or "
+                                  "strings") from None
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return arr.cast(pa.string())
+    raise TripletkitError(f"{what} have type {t}; ids are int64 or strings (as in the embedding table)")
 
 
 # -- reading ----------------------------------------------------------------------------------

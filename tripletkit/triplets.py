@@ -14,7 +14,7 @@ import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
 from .config import MAX_DISTANCE, check_margin
-from .table import as_table
+from .table import as_table, id_array
 
 __all__ = ["read_triplets", "triplet_loss_report"]
 
@@ -46,11 +46,14 @@ def read_triplets(path):
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
     out = {}
+    kinds = set()
     for col in _ID_COLUMNS:
-        c = table.column(col)
-        if c.null_count:
-            raise TripletkitError(f"triplet table {str(p)!r} column {col!r} has {c.null_count} null ids")
-        out[col] = c.to_numpy(zero_copy_only=False)
+        ids = id_array(table.column(col), f"{col} ids of triplet table {str(p)!r} (column {col!r})")
+        kinds.add(ids.type)
+        out[col] = ids.to_numpy(zero_copy_only=False)
+    if len(kinds) > 1:
+        raise TripletkitError(f"triplet table {str(p)!r} mixes integer and string ids across anchor, positive and "
+                              "negative; all three hold ids of one embedding table")
     return out
 
 
