@@ -126,6 +126,14 @@ def folder_without_parquet(tmp):
     return str(tmp / "dump")
 
 
+def folder_with_hidden_parts_only(tmp):
+    (tmp / "dump").mkdir()
+    good(tmp / "dump", ".part-0.parquet")
+    (tmp / "dump" / "_temporary").mkdir()
+    good(tmp / "dump" / "_temporary", "part-1.parquet")
+    return str(tmp / "dump")
+
+
 def folder_with_broken_part(tmp):
     (tmp / "dump").mkdir()
     good(tmp / "dump", "part-0.parquet")
@@ -319,13 +327,20 @@ CASES = [
     # -- files --------------------------------------------------------------------------------
     Case("missing-table", lambda tmp: ["mine", str(tmp / "nothere.parquet"), "--out", str(tmp / "t.parquet")],
          r"^error: embedding table '.*nothere\.parquet' does not exist; check the path$"),
-    Case("empty-0-byte-file", score_on(empty_file), r"cannot read '.*empty\.parquet' as Parquet \(.*0 bytes.*\); "
-         r"is the file complete\?$"),
-    Case("truncated-file", mine_on(truncated), r"cannot read '.*cut\.parquet' as Parquet \(.*magic bytes.*\)"),
-    Case("text-file-named-parquet", check_on(not_parquet), r"cannot read '.*notes\.parquet' as Parquet"),
+    Case("empty-0-byte-file", score_on(empty_file), r"cannot read embedding table '.*empty\.parquet' as Parquet "
+         r"\(.*0 bytes.*\); is the file complete\?$"),
+    Case("truncated-file", mine_on(truncated), r"cannot read embedding table '.*cut\.parquet' as Parquet \(.*magic "
+         r"bytes.*\)"),
+    Case("text-file-named-parquet", check_on(not_parquet),
+         r"^error: embedding table '.*notes\.parquet' is not a Parquet file; it looks like CSV: convert it to "
+         r"Parquet$"),
     Case("folder-mixed-schemas", mine_on(mixed_folder),
          r"folder '.*dump' mixes Parquet files with different schemas \(part-0\.parquet and part-1\.parquet\)"),
-    Case("folder-without-parquet", score_on(folder_without_parquet), r"folder '.*dump' holds no \.parquet files$"),
+    Case("folder-without-parquet", score_on(folder_without_parquet),
+         r"folder '.*dump' holds no \.parquet files \(names starting with '\.' or '_' are skipped, as by pyarrow's "
+         r"dataset discovery\)$"),
+    Case("folder-with-hidden-parquet-only", check_on(folder_with_hidden_parts_only),
+         r"folder '.*dump' holds no \.parquet files \(names starting with '\.' or '_' are skipped"),
     Case("folder-with-broken-part", check_on(folder_with_broken_part),
          r"cannot read part '.*dump/part-1\.parquet' of folder '.*dump' as Parquet"),
     # -- columns of the table contract ---------------------------------------------------------
@@ -822,3 +837,61 @@ def test_demo_refuses_an_output_folder_that_appears_meanwhile(tmp_path, monkeypa
                                               r"writing"):
         demo.run_demo(out, quiet=True, sweep=False)
     assert os.listdir(tmp_path) == ["demo"] and os.listdir(out) == []
+
+
+# ---------------------------------------------------------------------------------------------
+# damaged data pages (footer intact): every file the package writes carries page checksums
+# ---------------------------------------------------------------------------------------------
+def _damage_page(path, row_group=0, column=0):
+    """Flip a byte inside the last data page of a column chunk; the footer stays intact."""
+    meta = pq.ParquetFile(path).metadata
+    chunk = meta.row_group(row_group).column(column)
+    start = chunk.dictionary_page_offset if chunk.has_dictionary_page else chunk.data_page_offset
+    data = bytearray(Path(path).read_bytes())
+    data[start + chunk.total_compressed_size - 2] ^= 0x5A
+    Path(path).write_bytes(bytes(data))
+
+
+def test_damaged_triplet_table_names_file_and_row_group(tmp_path, capsys, monkeypatch):
+    from tripletkit import mining
+
+    monkeypatch.setattr(mining, "_ROW_GROUP_ROWS", 64)  # several row groups from a small table
+    src = good(tmp_path, n=60, d=6, identities=10)
+    out = tmp_path / "t.parquet"
+    assert main(["mine", src, "--out", str(out), "--quiet", "--regimes", "easy", "semi-hard", "hard"]) == 0
+    assert pq.ParquetFile(out).metadata.num_row_groups >= 3
+    capsys.readouterr()
+    assert main(["loss", str(out), src]) == 0
+    capsys.readouterr()
+    _damage_page(out, row_group=2, column=1)  # the positive ids of the third row group
+    before = _snapshot(tmp_path)
+    assert main(["loss", str(out), src]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == "" and captured.err.count("\n") == 1
+    assert re.match(r"error: triplet table '.*t\.parquet' is damaged: row group 2 fails its page checksum \(the "
+                    r"data changed after it was written\); restore the file from a copy or write it again$",
+                    captured.err)
+    assert _snapshot(tmp_path) == before
+
+
+@pytest.mark.parametrize("which", ["embeddings", "duplicates", "demo"])
+def test_every_written_parquet_file_carries_page_checksums(tmp_path, which):
+    from tripletkit._io import read_parquet
+
+    if which == "embeddings":
+        path = Path(good(tmp_path))
+    elif which == "duplicates":
+        src = tmp_path / "twins.parquet"
+        X = _rng(tmp_path).normal(size=(12, 4))
+        X[1] = X[0]  # rows 0 and 1 under two labels: one suspect duplicate
+        write_table(src, np.arange(12), np.repeat(np.arange(6), 2) + np.r_[0, 1, np.zeros(10, int)], X)
+        assert main(["mine", str(src), "--out", str(tmp_path / "t.parquet"), "--quiet"]) == 0
+        path = tmp_path / "t.duplicates.parquet"
+        assert pq.read_table(path).num_rows >= 1
+    else:
+        from tripletkit.demo import generate
+
+        path = Path(generate(tmp_path / "demo", seed=7)["heldout_embeddings"])
+    _damage_page(path, column=0)
+    with pytest.raises(TripletkitError, match=r"is damaged: row group 0 fails its page checksum"):
+        read_parquet(path, "table")

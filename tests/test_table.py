@@ -1,6 +1,7 @@
 """Embedding table: reading, conversion, validation errors, normalisation, atomic writing."""
 
 import os
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -205,3 +206,66 @@ def test_positions_take_ids_of_the_table_kind_only():
         s.positions([1])
     with pytest.raises(TripletkitError, match=r"^3 ids are not in the embedding table \(first: 'x', 'y'\)"):
         s.positions(["x", "a", "y", "x"])
+
+
+# ---------------------------------------------------------------------------------------------
+# page checksums: written into every file, verified on every read
+# ---------------------------------------------------------------------------------------------
+def damage_page(path, row_group=0, column=0):
+    """Flip a byte near the end of a column chunk (inside its last data page's values); the footer
+    stays intact, so only the page's checksum can tell."""
+    meta = pq.ParquetFile(path).metadata
+    chunk = meta.row_group(row_group).column(column)
+    start = chunk.dictionary_page_offset if chunk.has_dictionary_page else chunk.data_page_offset
+    data = bytearray(Path(path).read_bytes())
+    data[start + chunk.total_compressed_size - 2] ^= 0x5A
+    Path(path).write_bytes(bytes(data))
+
+
+def test_written_tables_carry_checksums_that_reading_verifies(tmp_path, rng):
+    path = tmp_path / "t.parquet"
+    X = rng.normal(size=(40, 8))
+    write_table(path, np.arange(40), np.repeat(np.arange(8), 5), X)
+    before = EmbeddingTable.read(path).embeddings
+    damage_page(path, column=2)  # the embedding column
+    with pytest.raises(TripletkitError, match=r"^embedding table '.*t\.parquet' is damaged: row group 0 fails its "
+                                              r"page checksum \(the data changed after it was written\); restore "
+                                              r"the file from a copy or write it again$"):
+        EmbeddingTable.read(path)
+    assert before.shape == (40, 8)
+
+
+def test_a_damaged_part_of_a_folder_is_named_with_its_row_group(tmp_path, rng):
+    (tmp_path / "dump").mkdir()
+    for i in range(3):
+        write_table(tmp_path / "dump" / f"part-{i}.parquet", np.arange(10) + 10 * i, np.repeat(np.arange(5), 2) + 5 * i,
+                    rng.normal(size=(10, 4)))
+    damage_page(tmp_path / "dump" / "part-1.parquet", column=2)
+    with pytest.raises(TripletkitError, match=r"^part '.*dump/part-1\.parquet' of folder '.*dump' is damaged: row "
+                                              r"group 0 fails its page checksum"):
+        EmbeddingTable.read(tmp_path / "dump")
+
+
+def test_a_file_written_without_checksums_is_still_read(tmp_path, rng):
+    # other tools may not write page checksums: verification only checks the pages that carry one
+    X = rng.normal(size=(12, 3)).astype(np.float32)
+    pq.write_table(to_arrow(np.arange(12), np.repeat(np.arange(4), 3), X), tmp_path / "plain.parquet",
+                   write_page_checksum=False)
+    assert EmbeddingTable.read(tmp_path / "plain.parquet").n == 12
+
+
+def test_files_starting_with_dot_or_underscore_are_not_parts(tmp_path, rng):
+    # pyarrow's dataset discovery skips them (hidden files, _SUCCESS markers, _temporary/ of writers)
+    folder = tmp_path / "dump"
+    (folder / "site=a").mkdir(parents=True)
+    (folder / "_temporary" / "0").mkdir(parents=True)
+    write_table(folder / "site=a" / "part-0.parquet", np.arange(6), np.repeat(np.arange(3), 2), rng.normal(size=(6, 4)))
+    write_table(folder / "part-1.parquet", np.arange(6, 12), np.repeat(np.arange(3), 2), rng.normal(size=(6, 4)))
+    for hidden in (folder / ".part-2.parquet", folder / "_part-3.parquet", folder / "_temporary" / "0" / "p.parquet"):
+        write_table(hidden, np.arange(100, 106), np.zeros(6, np.int64), rng.normal(size=(6, 4)))
+    (folder / "site=a" / ".part-0.parquet.crc").write_bytes(b"\x00\x01")
+    table = EmbeddingTable.read(folder)
+    assert sorted(table.ids.tolist()) == list(range(12))
+    import pyarrow.dataset as ds
+
+    assert ds.dataset(str(folder), format="parquet").count_rows() == 12  # the same files as pyarrow's discovery

@@ -1,9 +1,11 @@
-"""Atomic, no-replace output: write to a temporary sibling, then publish it under its name.
+"""Atomic, no-replace output, and the Parquet options and read errors shared by every reader and writer.
 
 An interrupted run leaves no half-written output and no temporary file; an existing output is
 never replaced unless ``force`` is set, including one that appears while the run is writing
-(another run with the same output): publishing itself refuses to replace. Used by every writer
-in the package.
+(another run with the same output): publishing itself refuses to replace. Every Parquet file the
+package writes carries page checksums (:data:`PARQUET_WRITE`) and every read verifies them
+(:data:`PARQUET_READ`); a failed read becomes one line naming the file (and, for a damaged page,
+the row group).
 """
 
 from __future__ import annotations
@@ -19,7 +21,9 @@ from pathlib import Path
 
 from ._errors import TripletkitError
 
-__all__ = ["atomic_path", "atomic_paths", "check_output", "check_not_input", "jsonable"]
+__all__ = ["atomic_path", "atomic_paths", "check_output", "check_not_input", "jsonable", "PARQUET_WRITE",
+           "PARQUET_READ", "parquet_files", "read_parquet", "read_parquet_schema", "read_parquet_files",
+           "parquet_error"]
 
 
 def _inside(inner, outer):
@@ -298,6 +302,157 @@ def atomic_path(path, force=False, directory=False):
     """
     with atomic_paths([path], force=force, directory=directory) as (tmp,):
         yield tmp
+
+
+# ---------------------------------------------------------------------------------------------
+# Parquet: the options of every file the package writes and reads, and the messages of a failed read
+# ---------------------------------------------------------------------------------------------
+#: Options of every Parquet file the package writes: zstd, and a CRC-32 checksum on every page so
+#: that a page damaged after writing is found when the file is read.
+PARQUET_WRITE = {"compression": "zstd", "write_page_checksum": True}
+#: Options of every Parquet read (``pyarrow.parquet.read_table``, ``ParquetFile``, the dataset
+#: scan options): verify the page checksums a file carries (pages written without one are read as
+#: they are).
+PARQUET_READ = {"page_checksum_verification": True}
+
+#: Names that pyarrow's dataset discovery skips inside a folder (hidden files, ``_SUCCESS``,
+#: ``_temporary/`` of other writers): any path component below the folder starting with these.
+IGNORED_PREFIXES = (".", "_")
+
+
+def parquet_files(folder):
+    """The ``.parquet`` files below ``folder``, sorted, skipping what pyarrow's discovery skips.
+
+    A file is skipped when its name or a folder between it and ``folder`` starts with ``.`` or
+    ``_`` (:data:`IGNORED_PREFIXES`), as ``pyarrow.dataset.dataset(folder)`` does.
+    """
+    root = Path(folder)
+    out = []
+    for f in root.rglob("*.parquet"):
+        if any(part.startswith(IGNORED_PREFIXES) for part in f.relative_to(root).parts):
+            continue
+        if f.is_file():
+            out.append(str(f))
+    return sorted(out)
+
+
+def read_parquet(path, what, columns=None, suffix=""):
+    """Read one Parquet file with checksum verification; a failure is one :class:`TripletkitError`.
+
+    Parameters
+    ----------
+    path : str or Path
+    what : str
+        What the file is, for messages (``"embedding table"``, ``"triplet table"``).
+    columns : list of str, optional
+    suffix : str, optional
+        Said after the file's name in messages (``" of folder 'dump'"``).
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        return pq.read_table(str(path), columns=columns, **PARQUET_READ)
+    except (pa.ArrowException, OSError) as exc:
+        raise parquet_error(exc, [path], what, suffix) from None
+
+
+def read_parquet_schema(path, what, suffix=""):
+    """The Arrow schema of a Parquet file (its footer only); a failure is one :class:`TripletkitError`."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        return pq.read_schema(str(path))
+    except (pa.ArrowException, OSError) as exc:
+        raise parquet_error(exc, [path], what, suffix) from None
+
+
+def read_parquet_files(files, what, suffix=""):
+    """Read Parquet files of one schema as one table (a ``pyarrow.dataset``), verifying checksums."""
+    import pyarrow as pa
+    import pyarrow.dataset as ds
+
+    fmt = ds.ParquetFileFormat(default_fragment_scan_options=ds.ParquetFragmentScanOptions(**PARQUET_READ))
+    try:
+        return ds.dataset(list(files), format=fmt).to_table()
+    except (pa.ArrowException, OSError) as exc:
+        raise parquet_error(exc, files, what, suffix) from None
+
+
+def _first_line(exc):
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def parquet_error(exc, files, what, suffix=""):
+    """The one-line :class:`TripletkitError` for a failed read of ``files`` (one or more Parquet files).
+
+    Messages name the file as ``{what} '{file}'{suffix}``. A page checksum failure names the file
+    and the row group; a file that is not Parquet at all says what it looks like (CSV, other
+    text); anything else quotes pyarrow's first line.
+    """
+    files = [str(f) for f in files]
+    name = files[0] if len(files) == 1 else None
+    if "checksum" in str(exc).lower() or "page integrity" in str(exc).lower():
+        found = _damaged_row_group(files)
+        if found is not None:
+            name, group = found
+            return TripletkitError(
+                f"{what} {name!r}{suffix} is damaged: row group {group} fails its page checksum (the data changed "
+                "after it was written); restore the file from a copy or write it again"
+            )
+    if name is not None:
+        looks = _looks_like(name)
+        if looks is not None:
+            return TripletkitError(f"{what} {name!r}{suffix} is not a Parquet file; it looks like {looks}: convert it "
+                                   "to Parquet")
+        return TripletkitError(f"cannot read {what} {name!r}{suffix} as Parquet ({_first_line(exc)}); is the file "
+                               "complete?")
+    return TripletkitError(f"cannot read the {len(files)} {what}s{suffix} as Parquet ({_first_line(exc)}); is every "
+                           "file complete?")
+
+
+def _damaged_row_group(files):
+    """(file, row group) of the first page that fails its checksum, or None."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    for name in files:
+        try:
+            pf = pq.ParquetFile(name, **PARQUET_READ)
+        except (pa.ArrowException, OSError):
+            continue
+        for group in range(pf.metadata.num_row_groups):
+            try:
+                pf.read_row_group(group)
+            except (pa.ArrowException, OSError) as exc:
+                if "checksum" in str(exc).lower() or "page integrity" in str(exc).lower():
+                    return name, group
+    return None
+
+
+def _looks_like(path):
+    """"CSV" or "text" for a file that starts like one instead of with Parquet's magic bytes, else None."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4096)
+    except OSError:
+        return None
+    if not head or head.startswith(b"PAR1") or b"\0" in head:
+        return None
+    try:
+        text = head.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        if exc.start < len(head) - 4:  # not just a character cut at the end of the sample
+            return None
+        text = head[:exc.start].decode("utf-8")
+    lines = [line for line in text.splitlines() if line.strip()]
+    if not lines:
+        return None
+    if any(sep in lines[0] for sep in (",", ";", "\t")):
+        return "CSV"
+    return "text"
 
 
 def jsonable(obj):

@@ -100,7 +100,7 @@ import pyarrow.parquet as pq
 from tqdm import tqdm
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_paths, check_output
+from ._io import PARQUET_WRITE, atomic_paths, check_output
 from .config import MiningConfig, override
 from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
                     faiss_threads, query_block_rows, resolve_kind)
@@ -1100,7 +1100,7 @@ class _TripletWriter:
         self.id_type = _arrow_type(table.ids)
         self.label_type = _arrow_type(table.label_values)
         self.schema = triplet_schema(self.id_type, self.label_type, metadata)
-        self.writer = pq.ParquetWriter(str(path), self.schema, compression="zstd") if path else None
+        self.writer = pq.ParquetWriter(str(path), self.schema, **PARQUET_WRITE) if path else None
         self.buffer, self.buffered = [], 0
 
     def add(self, arrays):
@@ -1164,7 +1164,7 @@ def _write_duplicates(path, table, i, j, c, metadata):
     cols = [_arrow(table.ids[i], id_type), _arrow(table.ids[j], id_type),
             _arrow(table.label_values[lab[i]], label_type), _arrow(table.label_values[lab[j]], label_type),
             pa.array(c, type=pa.float64())]
-    pq.write_table(pa.Table.from_arrays(cols, schema=schema), str(path), compression="zstd")
+    pq.write_table(pa.Table.from_arrays(cols, schema=schema), str(path), **PARQUET_WRITE)
 
 
 def _metadata(cfg, table, index, recall, extra=None):

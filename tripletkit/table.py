@@ -14,11 +14,10 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import atomic_path
+from ._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
            "id_array"]
@@ -340,35 +339,23 @@ def _read_arrow(path):
     p = Path(path)
     if not p.exists():
         raise TripletkitError(f"embedding table {str(p)!r} does not exist; check the path")
-    try:
-        if p.is_dir():
-            files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
-            if not files:
-                raise TripletkitError(f"folder {str(p)!r} holds no .parquet files")
-            schemas = {}
-            for f in files:
-                try:
-                    schema = pq.read_schema(f)
-                except (pa.ArrowException, OSError) as exc:
-                    msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-                    raise TripletkitError(f"cannot read part {f!r} of folder {str(p)!r} as Parquet ({msg}); "
-                                          "is the file complete?") from None
-                schemas.setdefault(schema.remove_metadata(), f)
-            if len(schemas) > 1:
-                a, b = list(schemas.values())[:2]
-                raise TripletkitError(
-                    f"folder {str(p)!r} mixes Parquet files with different schemas "
-                    f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
-                )
-            table = ds.dataset(files, format="parquet").to_table()
-        else:
-            table = pq.read_table(str(p))
-    except TripletkitError:
-        raise
-    except (pa.ArrowException, OSError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
-    return table
+    if not p.is_dir():
+        return read_parquet(p, "embedding table")
+    files = parquet_files(p)
+    if not files:
+        raise TripletkitError(f"folder {str(p)!r} holds no .parquet files (names starting with '.' or '_' are "
+                              "skipped, as by pyarrow's dataset discovery)")
+    schemas = {}
+    for f in files:
+        schema = read_parquet_schema(f, "part", f" of folder {str(p)!r}")
+        schemas.setdefault(schema.remove_metadata(), f)
+    if len(schemas) > 1:
+        a, b = list(schemas.values())[:2]
+        raise TripletkitError(
+            f"folder {str(p)!r} mixes Parquet files with different schemas "
+            f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
+        )
+    return read_parquet_files(files, "part", f" of folder {str(p)!r}")
 
 
 def _key_column(col, name, role, where):
@@ -560,7 +547,7 @@ def write_table(path, ids, labels, embeddings, groups=None, *, extra=None, metad
     """Write an embedding table to Parquet atomically; refuses to overwrite unless ``force``."""
     table = to_arrow(ids, labels, embeddings, groups, extra, metadata)
     with atomic_path(path, force=force) as tmp:
-        pq.write_table(table, str(tmp), compression="zstd")
+        pq.write_table(table, str(tmp), **PARQUET_WRITE)
     return Path(path)
 
 

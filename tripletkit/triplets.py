@@ -9,10 +9,9 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
+from ._io import read_parquet, read_parquet_schema
 from .config import MAX_DISTANCE, check_margin
 from .table import as_table, id_array
 
@@ -32,19 +31,13 @@ def read_triplets(path):
     p = Path(path)
     if not p.is_file():
         raise TripletkitError(f"triplet table {str(p)!r} does not exist; check the path")
-    try:
-        schema = pq.read_schema(str(p))
-        missing = [c for c in _ID_COLUMNS if c not in schema.names]
-        if missing:
-            raise TripletkitError(
-                f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
-            )
-        table = pq.read_table(str(p), columns=list(_ID_COLUMNS))
-    except TripletkitError:
-        raise
-    except (pa.ArrowException, OSError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    schema = read_parquet_schema(p, "triplet table")
+    missing = [c for c in _ID_COLUMNS if c not in schema.names]
+    if missing:
+        raise TripletkitError(
+            f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
+        )
+    table = read_parquet(p, "triplet table", columns=list(_ID_COLUMNS))
     out = {}
     kinds = set()
     for col in _ID_COLUMNS:
