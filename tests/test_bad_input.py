@@ -895,3 +895,14 @@ def test_every_written_parquet_file_carries_page_checksums(tmp_path, which):
     _damage_page(path, column=0)
     with pytest.raises(TripletkitError, match=r"is damaged: row group 0 fails its page checksum"):
         read_parquet(path, "table")
+
+
+def test_raw_vectors_beyond_float32_range_name_the_real_problem(rng):
+    from tripletkit.metrics.health import mean_impostor_cosine
+
+    X = rng.normal(size=(10, 4))
+    X[[3, 8]] *= 1e300  # finite in float64, Inf once cast to float32
+    with pytest.raises(TripletkitError, match=r"^embeddings has 2 rows with values outside float32's range \(about "
+                                              r"1\.2e-38 to 3\.4e38 in absolute value; first row positions: \[3, 8\]\); "
+                                              r"divide the rows by their norms \(in float64\) first$"):
+        mean_impostor_cosine(X, np.repeat(np.arange(5), 2))

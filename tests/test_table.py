@@ -269,3 +269,44 @@ def test_files_starting_with_dot_or_underscore_are_not_parts(tmp_path, rng):
     import pyarrow.dataset as ds
 
     assert ds.dataset(str(folder), format="parquet").count_rows() == 12  # the same files as pyarrow's discovery
+
+
+# ---------------------------------------------------------------------------------------------
+# finite float64 values beyond float32's range keep their direction
+# ---------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("scale", [1e300, 1e-300, 1e39, 1e-39])
+def test_float64_rows_beyond_float32_range_are_normalised_not_refused(tmp_path, rng, scale):
+    import warnings
+
+    X = rng.normal(size=(12, 5))
+    labels = np.repeat(np.arange(4), 3)
+    reference = EmbeddingTable.from_arrays(np.arange(12), labels, X)
+    wide = X.copy()
+    wide[[2, 7]] *= scale  # two rows far outside float32's range, the others ordinary
+    path = tmp_path / "wide.parquet"
+    pq.write_table(pa.table({"id": np.arange(12), "label": labels,
+                             "embedding": pa.array(list(wide), pa.list_(pa.float64()))}), path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no RuntimeWarning about overflow in a cast
+        from_file = EmbeddingTable.read(path)
+        from_arrays = EmbeddingTable.from_arrays(np.arange(12), labels, wide)
+    for t in (from_file, from_arrays):
+        assert t.dropped == 0 and not t.unit_norm
+        # the same unit vectors up to float32 rounding (scaling by 1e300 is itself rounded in float64)
+        np.testing.assert_allclose(t.embeddings, reference.embeddings, rtol=0, atol=2e-7)
+        # rows inside float32's range are the bytes of the ordinary table
+        keep = np.setdiff1d(np.arange(12), [2, 7])
+        assert np.array_equal(t.embeddings[keep], reference.embeddings[keep])
+    assert np.array_equal(from_file.embeddings, from_arrays.embeddings)
+
+
+def test_float64_rows_beyond_float32_range_pass_check(tmp_path, capsys, rng):
+    from tripletkit.cli import main
+
+    X = rng.normal(size=(12, 4)) * 1e300
+    path = tmp_path / "wide.parquet"
+    pq.write_table(pa.table({"id": np.arange(12), "label": np.repeat(np.arange(4), 3),
+                             "embedding": pa.array(list(X), pa.list_(pa.float64()))}), path)
+    assert main(["check", str(path), "--json"]) == 0
+    out, err = capsys.readouterr()
+    assert err == "" and '"invalid_rows": 0' in out

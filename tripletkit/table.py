@@ -18,6 +18,7 @@ import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
 from ._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
+from ._validate import float32_rows
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
            "id_array"]
@@ -114,13 +115,13 @@ class EmbeddingTable:
             dup = _first_duplicate(ids)
             raise TripletkitError(f"id column {id_column!r}{where} has duplicate ids (first: {dup!r}); ids must be unique")
         labels = _key_column(table.column(label_column), label_column, "label", where)
-        emb = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
+        emb, rescaled = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
         groups = None
         if group_column and group_column in names:
             groups = _group_column(table.column(group_column), group_column, where)
         others = [c for c in names if c not in (id_column, label_column, embedding_column, group_column)]
         metadata = table.select(others) if others else None
-        return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where)
+        return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where, rescaled)
 
     @classmethod
     def from_arrays(cls, ids, labels, embeddings, groups=None, *, drop_invalid=False):
@@ -134,7 +135,7 @@ class EmbeddingTable:
             raise TripletkitError("embeddings have dimension 0; every row needs at least one value")
         if not np.issubdtype(emb.dtype, np.number):
             raise TripletkitError(f"embeddings must hold real numbers, got dtype {emb.dtype}")
-        emb = np.ascontiguousarray(emb, dtype=np.float32)
+        emb, rescaled = _float32(emb)
         ids = np.asarray(ids)
         labels = np.asarray(labels)
         for name, arr in (("ids", ids), ("labels", labels)):
@@ -161,10 +162,10 @@ class EmbeddingTable:
                 raise TripletkitError(f"groups must have one entry per row ({ids.shape[0]}), got shape {groups.shape}")
             if groups.dtype == object and any(v is None for v in groups):
                 raise TripletkitError("groups contain null values; every row needs a group (e.g. 'unknown')")
-        return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "")
+        return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "", rescaled)
 
     @classmethod
-    def _build(cls, ids, labels, emb, groups, drop_invalid, source, metadata, where):
+    def _build(cls, ids, labels, emb, groups, drop_invalid, source, metadata, where, rescaled=0):
         n = emb.shape[0]
         bad_finite = np.zeros(n, dtype=bool)
         sq = np.empty(n, dtype=np.float64)
@@ -194,7 +195,8 @@ class EmbeddingTable:
             groups = groups[keep] if groups is not None else None
             metadata = metadata.filter(pa.array(keep)) if metadata is not None else None
         norms = np.sqrt(sq)
-        unit = bool(np.all(np.abs(norms - 1.0) <= UNIT_NORM_TOLERANCE))
+        # a rescaled row (float64 values outside float32's range) was far from unit length
+        unit = not rescaled and bool(np.all(np.abs(norms - 1.0) <= UNIT_NORM_TOLERANCE))
         out = np.empty(emb.shape, dtype=np.float32)
         for s in range(0, emb.shape[0], _ROW_BLOCK):
             np.divide(emb[s:s + _ROW_BLOCK], norms[s:s + _ROW_BLOCK, None], out=out[s:s + _ROW_BLOCK],
@@ -454,10 +456,14 @@ def _embedding_matrix(col, name, ids, where):
         raise TripletkitError(
             f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"
         )
-    flat = values.to_numpy(zero_copy_only=False)
-    if flat.dtype != np.float32:
-        flat = flat.astype(np.float32)
-    return flat.reshape(n, d)
+    return _float32(values.to_numpy(zero_copy_only=False).reshape(n, d))
+
+
+def _float32(matrix):
+    """``(float32 matrix, rows rescaled)``: float64 rows outside float32's range keep their direction."""
+    if matrix.dtype.kind == "f" and matrix.dtype.itemsize > 4:
+        return float32_rows(matrix)
+    return np.ascontiguousarray(matrix, dtype=np.float32), 0
 
 
 def read_table(path, **options):
