@@ -197,14 +197,14 @@ def config(text, name="c.toml"):
     return build
 
 
-def sweep_config(heldout_labels=None, extra=""):
+def sweep_config(heldout_labels=None, extra="", head=""):
     """A fit-head sweep over two small feature tables (labels 0-5 train, 100-105 held out)."""
     def build(tmp):
         good(tmp, "train.parquet", n=36, d=6)
         labels = np.repeat(np.arange(6), 4) + 100 if heldout_labels is None else heldout_labels
         good(tmp, "heldout.parquet", d=6, labels=labels)
         text = ('[sweep]\nmargins = [0.1, 0.2]\nprimary = "eer"\nbootstrap = 5\n'
-                '[data]\ntrain = "train.parquet"\nheldout = "heldout.parquet"\n[head]\ndim = 3\nepochs = 1\n'
+                '[data]\ntrain = "train.parquet"\nheldout = "heldout.parquet"\n[head]\ndim = 3\nepochs = 1\n' + head +
                 '[evaluation]\nbootstrap = 0\nclustering = false\nplots = false\n' + extra)
         (tmp / "sweep.toml").write_text(text)
         return str(tmp / "sweep.toml")
@@ -470,6 +470,9 @@ CASES = [
          r"config file '.*none\.toml' does not exist$"),
     Case("sweep-fit-head-without-data", sweep_with(config('[sweep]\nmargins = [0.1]\n')),
          r"fit-head mode needs \[data\] train and heldout"),
+    Case("sweep-head-diverges", sweep_with(sweep_config(head="learning_rate = 1e308\n")),
+         r"^error: the projection head diverged at margin 0\.1 in epoch 1 of 1: the projection head's (raw outputs|"
+         r"weights|gradients) overflowed to Inf/NaN; lower \[head\] learning_rate \(now 1e\+308, try 1e\+306\)$"),
     Case("sweep-margin-zero", _sweep_margin_zero, r"\[sweep\]\.margins\[0\] must be > 0\.0, got 0\.0$"),
     # -- outputs ------------------------------------------------------------------------------
     Case("out-parent-is-a-file", _out_parent_is_a_file,
