@@ -16,10 +16,11 @@ What users expect is a result when one can be computed and one clear line when i
 ============================  =========  ======================  ======================  =========
 input                         check      mine                    score (all pairs)       sweep
 ============================  =========  ======================  ======================  =========
-one identity only             exit 0     exit 2 (no negatives)   exit 2 (no impostor     exit 2
-                              (reports                           pairs)
-                              it)
-no genuine pairs (every       exit 0     exit 2 (no anchors)     exit 2 (no genuine      exit 2
+one identity only             exit 1     exit 2 (no negatives)   exit 2 (no impostor     exit 2
+                              (a                                 pairs)
+                              problem
+                              line)
+no genuine pairs (every       exit 1     exit 2 (no anchors)     exit 2 (no genuine      exit 2
 identity has one row)                                            pairs)
 all rows identical            exit 0     exit 0: every triplet   exit 0: EER 0.5, AUC    exit 0
                                          is semi-hard (d_ap =    0.5, health.collapsed
@@ -576,11 +577,36 @@ def _warning_lines_only(err):
 
 
 def test_check_reports_one_identity_and_singletons(tmp_path, capsys):
-    assert main(["check", one_identity(tmp_path), "--json"]) == 0
-    assert json.loads(capsys.readouterr().out)["identities"] == 1
-    assert main(["check", singletons(tmp_path), "--json"]) == 0
+    # like a linter: exit 1, the summary, then one line per problem that mine and score refuse
+    assert main(["check", one_identity(tmp_path), "--json"]) == 1
     data = json.loads(capsys.readouterr().out)
-    assert data["singletons"] == 12 and data["identities"] == 12
+    assert data["identities"] == 1 and len(data["problems"]) == 1 and "single identity" in data["problems"][0]
+    assert main(["check", singletons(tmp_path)]) == 1
+    out, err = capsys.readouterr()
+    assert err == "" and "singletons: 12\n" in out and "identities: 12\n" in out
+    problems = [line for line in out.splitlines() if line.startswith("problem: ")]
+    assert problems == [line for line in out.splitlines()[-len(problems):]]  # after the summary
+    assert len(problems) == 1 and "so there are no genuine pairs; mining or scoring needs" in problems[0]
+
+
+@pytest.mark.parametrize("make, args, code, problems", [
+    (bad_rows("nan"), [], 1, [r"has 1 rows with NaN/Inf or zero norm \(first ids: 3\); mine and score refuse them"]),
+    (bad_rows("zero"), ["--drop-invalid"], 0, []),
+    (bad_rows("all"), ["--drop-invalid"], 1, [r"every row of the table .* is invalid \(NaN/Inf or zero norm\): "
+                                              r"there is nothing to mine or score$"]),
+    (good, [], 0, []),
+])
+def test_check_exit_code_says_whether_mine_and_score_accept_the_table(tmp_path, capsys, make, args, code, problems):
+    src = make(tmp_path)
+    assert main(["check", src, "--json", *args]) == code
+    out, err = capsys.readouterr()
+    data = json.loads(out)
+    assert err == "" and data["rows"] == 24  # every row of the file, valid or not
+    assert len(data["problems"]) == len(problems)
+    for text, pattern in zip(data["problems"], problems):
+        assert re.search(pattern, text), text
+    if code == 1 and not args:  # what check calls a problem, mine refuses
+        assert main(["mine", src, "--out", str(tmp_path / "t.parquet"), "--quiet"]) == 2
 
 
 def test_identical_rows_mine_all_semi_hard(tmp_path, capsys):

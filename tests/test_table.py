@@ -1,6 +1,7 @@
 """Embedding table: reading, conversion, validation errors, normalisation, atomic writing."""
 
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -182,10 +183,36 @@ def test_check_summary(tmp_path, rng):
     emb[6] = np.nan
     write_table(tmp_path / "t.parquet", np.arange(7), np.array([0, 0, 0, 1, 1, 2, 2]), emb)
     out = check(tmp_path / "t.parquet")
-    # Row 6 (label 2) is invalid, so label 2 is left with one sample: a singleton.
-    assert out["rows"] == 6 and out["dim"] == 3 and out["identities"] == 3
+    # rows counts every row of the file; the other counts are of the valid rows. Row 6 (label 2)
+    # is invalid, so label 2 is left with one sample: a singleton.
+    assert out["rows"] == 7 and out["dim"] == 3 and out["identities"] == 3
     assert out["singletons"] == 1 and out["invalid_rows"] == 1 and out["unit_norm"] is False
     assert out["samples_per_identity"] == {"min": 1, "median": 2.0, "max": 3}
+    # mine and score would refuse the NaN row: a problem, unless the rows are dropped
+    assert len(out["problems"]) == 1
+    assert re.match(r"table '.*t\.parquet' has 1 rows with NaN/Inf or zero norm \(first ids: 6\); mine and score "
+                    r"refuse them: fix them or pass --drop-invalid$", out["problems"][0])
+    assert check(tmp_path / "t.parquet", drop_invalid=True)["problems"] == []
+
+
+@pytest.mark.parametrize("labels, problem", [
+    (np.zeros(6, np.int64), r"has a single identity \(label 0\), so there are no impostor pairs; mining or scoring "
+                            r"needs at least 2 identities"),
+    (np.arange(6), r"every identity of table .* has one row, so there are no genuine pairs; mining or scoring needs"),
+])
+def test_check_lists_what_mine_and_score_refuse(tmp_path, rng, labels, problem):
+    write_table(tmp_path / "t.parquet", np.arange(6), labels, rng.normal(size=(6, 3)))
+    out = check(tmp_path / "t.parquet")
+    assert out["rows"] == 6 and out["invalid_rows"] == 0
+    assert len(out["problems"]) == 1 and re.search(problem, out["problems"][0])
+
+
+def test_check_of_a_table_with_every_row_invalid(tmp_path):
+    write_table(tmp_path / "t.parquet", np.arange(4), np.array([0, 0, 1, 1]), np.zeros((4, 3)))
+    out = check(tmp_path / "t.parquet")
+    assert out["rows"] == 4 and out["invalid_rows"] == 4 and out["identities"] == 2
+    assert out["problems"] == [f"every row of the table in {tmp_path / 't.parquet'} is invalid (NaN/Inf or zero "
+                               "norm): there is nothing to mine or score"]
 
 
 def test_positions_take_ids_of_the_table_kind_only():

@@ -294,9 +294,10 @@ def main(argv=None):
     """Entry point of the ``tripletkit`` command; returns the exit code.
 
     Exit codes: 0 done; 2 bad input (one line ``error: ...`` on stderr, also for running out of
-    memory or an operating-system error such as a full disk); 130 interrupted (Ctrl-C), 143
-    terminated (SIGTERM); 1 an internal error (a bug: the line says so, ``--debug`` shows the
-    traceback). Warnings print as one line each, ``warning: ...``.
+    memory or an operating-system error such as a full disk); 1 ``check`` found problems (one line
+    ``problem: ...`` each after the summary) or an internal error (a bug: the line says so,
+    ``--debug`` shows the traceback); 130 interrupted (Ctrl-C), 143 terminated (SIGTERM).
+    Warnings print as one line each, ``warning: ...``.
     """
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -339,11 +340,16 @@ def main(argv=None):
         return 1
     finally:
         signal.signal(signal.SIGTERM, previous)
+    # check reports like a linter: each problem that would make mine or score refuse the table
+    # on its own line, and exit code 1
+    problems = result.get("problems") if args.command == "check" and isinstance(result, dict) else None
     try:
         if getattr(args, "json", False):
             print(json.dumps(result, indent=2, sort_keys=False))
         elif isinstance(result, dict):
-            print("\n".join(_text(result)))
+            print("\n".join(_text({k: v for k, v in result.items() if not (problems is not None and k == "problems")})))
+            for problem in problems or ():
+                print(f"problem: {_one_line(problem)}")
         elif result is not None:
             print(result)
         sys.stdout.flush()
@@ -351,7 +357,7 @@ def main(argv=None):
         # the reader (e.g. `| head`) went away; not an error of ours
         with contextlib.suppress(OSError):
             os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-    return 0
+    return 1 if problems else 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -21,7 +21,7 @@ from ._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_p
 from ._validate import float32_rows
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
-           "id_array"]
+           "pair_problems", "id_array"]
 
 #: Norms within this distance of 1 count as "already unit length".
 UNIT_NORM_TOLERANCE = 1e-3
@@ -37,6 +37,14 @@ def _first(ids, mask, k=5):
 
 def _py(v):
     return v.item() if isinstance(v, np.generic) else v
+
+
+class _EveryRowInvalid(TripletkitError):
+    """Every row has NaN/Inf or zero norm (raised with ``drop_invalid``); carries what check reports."""
+
+    def __init__(self, message, rows, dim, identities):
+        super().__init__(message)
+        self.rows, self.dim, self.identities = rows, dim, identities
 
 
 @dataclass(frozen=True, eq=False)
@@ -59,6 +67,8 @@ class EmbeddingTable:
         Whether every input row already had unit length (within 1e-3).
     dropped : int
         Rows dropped as invalid (NaN/Inf/zero norm) when ``drop_invalid`` was set.
+    dropped_ids : tuple
+        The first (at most 5) ids of the dropped rows.
     source : str or None
         Where the table was read from.
     metadata : pyarrow.Table or None
@@ -72,6 +82,7 @@ class EmbeddingTable:
     groups: np.ndarray | None = None
     unit_norm: bool = True
     dropped: int = 0
+    dropped_ids: tuple = ()
     source: str | None = None
     metadata: pa.Table | None = None
     _fingerprint: list = field(default_factory=list, repr=False)
@@ -176,7 +187,7 @@ class EmbeddingTable:
                 sq[s:s + _ROW_BLOCK] = np.einsum("ij,ij->i", blk, blk, dtype=np.float64)
         bad_zero = (~bad_finite) & (sq == 0)
         bad = bad_finite | bad_zero
-        dropped = 0
+        dropped, dropped_ids = 0, ()
         if bad.any():
             if not drop_invalid:
                 parts = []
@@ -189,8 +200,10 @@ class EmbeddingTable:
                 )
             keep = ~bad
             dropped = int(bad.sum())
+            dropped_ids = tuple(_py(ids[p]) for p in np.flatnonzero(bad)[:5])
             if dropped == n:
-                raise TripletkitError(f"every row of the table{where} is invalid (NaN/Inf or zero norm)")
+                raise _EveryRowInvalid(f"every row of the table{where} is invalid (NaN/Inf or zero norm)",
+                                       rows=n, dim=int(emb.shape[1]), identities=len(np.unique(labels)))
             ids, labels, emb, sq = ids[keep], labels[keep], emb[keep], sq[keep]
             groups = groups[keep] if groups is not None else None
             metadata = metadata.filter(pa.array(keep)) if metadata is not None else None
@@ -203,7 +216,8 @@ class EmbeddingTable:
                       casting="unsafe")
         values, codes = np.unique(labels, return_inverse=True)
         return cls(ids=ids, labels=codes.astype(np.int64).reshape(-1), label_values=values, embeddings=out,
-                   groups=groups, unit_norm=unit, dropped=dropped, source=source, metadata=metadata)
+                   groups=groups, unit_norm=unit, dropped=dropped, dropped_ids=dropped_ids, source=source,
+                   metadata=metadata)
 
     # -- properties ---------------------------------------------------------------------------
     @property
@@ -275,7 +289,7 @@ class EmbeddingTable:
             ids=self.ids[rows], labels=codes.astype(np.int64).reshape(-1), label_values=self.label_values[values],
             embeddings=np.ascontiguousarray(self.embeddings[rows]),
             groups=None if self.groups is None else self.groups[rows], unit_norm=self.unit_norm,
-            dropped=self.dropped, source=self.source,
+            dropped=self.dropped, dropped_ids=self.dropped_ids, source=self.source,
             metadata=None if self.metadata is None else self.metadata.take(pa.array(rows)),
         )
 
@@ -493,6 +507,27 @@ def as_table(source, **options):
     )
 
 
+def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
+    """The reasons (one line each) why ``table`` has no genuine or no impostor pairs at all.
+
+    Parameters are those of :func:`require_pairs`; an empty list means the pairs are there.
+    """
+    where = f" {table.source!r}" if table.source else ""
+    problems = []
+    if impostor and table.n_identities < 2:
+        only = _py(table.label_values[0])
+        problems.append(
+            f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
+            f"at least 2 identities ({hint})"
+        )
+    if genuine and not (table.identity_sizes() >= 2).any():
+        problems.append(
+            f"every identity of table{where} has one row, so there are no genuine pairs; {what} needs identities "
+            f"with at least 2 rows ({hint})"
+        )
+    return problems
+
+
 def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
     """Raise when a table has no genuine pairs or no impostor pairs at all.
 
@@ -512,18 +547,9 @@ def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-
     hint : str
         What to check, appended to the message in parentheses.
     """
-    where = f" {table.source!r}" if table.source else ""
-    if impostor and table.n_identities < 2:
-        only = _py(table.label_values[0])
-        raise TripletkitError(
-            f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
-            f"at least 2 identities ({hint})"
-        )
-    if genuine and not (table.identity_sizes() >= 2).any():
-        raise TripletkitError(
-            f"every identity of table{where} has one row, so there are no genuine pairs; {what} needs identities "
-            f"with at least 2 rows ({hint})"
-        )
+    problems = pair_problems(table, what, genuine=genuine, impostor=impostor, hint=hint)
+    if problems:
+        raise TripletkitError(problems[0])
 
 
 # -- writing ----------------------------------------------------------------------------------
@@ -559,22 +585,55 @@ def write_table(path, ids, labels, embeddings, groups=None, *, extra=None, metad
 
 # -- the check command ------------------------------------------------------------------------
 def check(source, **options):
-    """Describe an embedding table: size, identities, singletons, invalid rows, unit norm.
+    """Describe an embedding table and list the problems that would make ``mine`` or ``score`` refuse it.
 
     Invalid rows (NaN/Inf/zero norm) are counted, not fatal, so that the check can report them.
+
+    Parameters
+    ----------
+    source : str, Path, EmbeddingTable or (ids, labels, embeddings)
+    **options
+        Column names and ``drop_invalid`` as for :meth:`EmbeddingTable.read`; with
+        ``drop_invalid`` the invalid rows are not a problem (mine and score would drop them).
 
     Returns
     -------
     dict
-        Keys ``rows``, ``dim``, ``identities``, ``samples_per_identity`` (min/median/max),
-        ``singletons``, ``invalid_rows``, ``unit_norm``, ``groups`` (count or None).
+        Keys ``rows`` (rows in the input, valid or not), ``dim``, ``identities``,
+        ``samples_per_identity`` (min/median/max), ``singletons``, ``invalid_rows`` (rows with
+        NaN/Inf or zero norm), ``unit_norm``, ``groups`` (count or None), all but ``rows`` and
+        ``invalid_rows`` counted on the valid rows, and ``problems``: one line per finding that
+        would make ``tripletkit mine`` or ``tripletkit score`` refuse the table (invalid rows
+        without ``drop_invalid``, no genuine pairs, a single identity); empty when the table is
+        usable. The command prints each problem on its own line and exits with code 1.
+
+    Raises
+    ------
+    TripletkitError
+        When the input cannot be read as an embedding table at all (a missing or broken file, a
+        missing column, wrong column types, null or duplicate ids, no rows).
     """
     options = dict(options)
+    drop_requested = bool(options.get("drop_invalid", False))
     options["drop_invalid"] = True
-    table = as_table(source, **options)
+    try:
+        table = as_table(source, **options)
+    except _EveryRowInvalid as exc:
+        return {
+            "rows": exc.rows, "dim": exc.dim, "identities": exc.identities, "samples_per_identity": None,
+            "singletons": None, "invalid_rows": exc.rows, "unit_norm": None, "groups": None,
+            "problems": [f"{exc}: there is nothing to mine or score"],
+        }
     sizes = table.identity_sizes()
+    problems = []
+    if table.dropped and not drop_requested:
+        where = f" {table.source!r}" if table.source else ""
+        first = ", ".join(repr(v) for v in table.dropped_ids)
+        problems.append(f"table{where} has {table.dropped} rows with NaN/Inf or zero norm (first ids: {first}); mine "
+                        "and score refuse them: fix them or pass --drop-invalid")
+    problems += pair_problems(table, "mining or scoring")
     return {
-        "rows": table.n,
+        "rows": table.n + table.dropped,
         "dim": table.dim,
         "identities": table.n_identities,
         "samples_per_identity": {"min": int(sizes.min()), "median": float(np.median(sizes)), "max": int(sizes.max())},
@@ -582,4 +641,5 @@ def check(source, **options):
         "invalid_rows": int(table.dropped),
         "unit_norm": bool(table.unit_norm),
         "groups": None if table.groups is None else int(len(set(table.groups.tolist()))),
+        "problems": problems,
     }
