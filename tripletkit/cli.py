@@ -1,5 +1,8 @@
 """Command line: argument parsing only. Every command calls one public function of the package.
 
+Importing this module is light (no numpy, pyarrow or faiss): each command imports what it needs
+when it runs, inside :func:`main`'s handling of Ctrl-C.
+
 Options of ``mine``, ``score`` and ``sweep`` are generated from the config dataclasses
 (:mod:`tripletkit.config`), so every config key has the option of the same name and the two
 cannot drift apart. A command-line option overrides the config file.
@@ -19,10 +22,9 @@ import typing
 import warnings
 
 from . import __version__
-from ._errors import TripletkitError
+from ._errors import INTERRUPTED, TripletkitError
 from ._io import check_not_input, jsonable
 from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
-from .table import require_pairs
 
 __all__ = ["main", "build_parser"]
 
@@ -194,10 +196,8 @@ def _run(args):
         return triplet_loss_report(args.triplets, args.table, margin=args.margin, distance=args.distance,
                                    soft=args.soft, table_options=_table_kwargs(args))
     if args.command == "mine":
-        from .mining import mine
-        from .table import EmbeddingTable
-
-        from .mining import duplicates_path
+        from .mining import duplicates_path, mine
+        from .table import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)
@@ -213,8 +213,7 @@ def _run(args):
                     table_options=_table_kwargs(args), **kwargs)
     if args.command == "score":
         from .evaluate import score
-
-        from .table import EmbeddingTable
+        from .table import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "evaluation", EvaluationConfig)
         compute = _compute(args)
@@ -320,7 +319,7 @@ def main(argv=None):
     except KeyboardInterrupt:
         if args.debug:
             raise
-        print("interrupted: no output was written", file=sys.stderr)
+        print(INTERRUPTED, file=sys.stderr)
         return 130
     except _Terminated as exc:
         print("terminated: no output was written", file=sys.stderr)
