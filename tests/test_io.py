@@ -126,7 +126,7 @@ def test_each_way_of_publishing_refuses_an_existing_target(tmp_path, publish, ki
     (tmp_path / "free").rename(tmp)
     target = tmp_path / "taken"
     _appear(target, kind)
-    with pytest.raises(FileExistsError):
+    with pytest.raises(FileExistsError, match=r"File exists"):
         publish(tmp, target)
     assert tmp.exists()
     assert (target.read_text() == "the other run's output") if kind == "file" else target.is_dir()
