@@ -16,10 +16,11 @@ What users expect is a result when one can be computed and one clear line when i
 ============================  =========  ======================  ======================  =========
 input                         check      mine                    score (all pairs)       sweep
 ============================  =========  ======================  ======================  =========
-one identity only             exit 0     exit 2 (no negatives)   exit 2 (no impostor     exit 2
-                              (reports                           pairs)
-                              it)
-no genuine pairs (every       exit 0     exit 2 (no anchors)     exit 2 (no genuine      exit 2
+one identity only             exit 1     exit 2 (no negatives)   exit 2 (no impostor     exit 2
+                              (a                                 pairs)
+                              problem
+                              line)
+no genuine pairs (every       exit 1     exit 2 (no anchors)     exit 2 (no genuine      exit 2
 identity has one row)                                            pairs)
 all rows identical            exit 0     exit 0: every triplet   exit 0: EER 0.5, AUC    exit 0
                                          is semi-hard (d_ap =    0.5, health.collapsed
@@ -126,6 +127,14 @@ def folder_without_parquet(tmp):
     return str(tmp / "dump")
 
 
+def folder_with_hidden_parts_only(tmp):
+    (tmp / "dump").mkdir()
+    good(tmp / "dump", ".part-0.parquet")
+    (tmp / "dump" / "_temporary").mkdir()
+    good(tmp / "dump" / "_temporary", "part-1.parquet")
+    return str(tmp / "dump")
+
+
 def folder_with_broken_part(tmp):
     (tmp / "dump").mkdir()
     good(tmp / "dump", "part-0.parquet")
@@ -189,14 +198,14 @@ def config(text, name="c.toml"):
     return build
 
 
-def sweep_config(heldout_labels=None, extra=""):
+def sweep_config(heldout_labels=None, extra="", head=""):
     """A fit-head sweep over two small feature tables (labels 0-5 train, 100-105 held out)."""
     def build(tmp):
         good(tmp, "train.parquet", n=36, d=6)
         labels = np.repeat(np.arange(6), 4) + 100 if heldout_labels is None else heldout_labels
         good(tmp, "heldout.parquet", d=6, labels=labels)
         text = ('[sweep]\nmargins = [0.1, 0.2]\nprimary = "eer"\nbootstrap = 5\n'
-                '[data]\ntrain = "train.parquet"\nheldout = "heldout.parquet"\n[head]\ndim = 3\nepochs = 1\n'
+                '[data]\ntrain = "train.parquet"\nheldout = "heldout.parquet"\n[head]\ndim = 3\nepochs = 1\n' + head +
                 '[evaluation]\nbootstrap = 0\nclustering = false\nplots = false\n' + extra)
         (tmp / "sweep.toml").write_text(text)
         return str(tmp / "sweep.toml")
@@ -298,17 +307,41 @@ def _loss_unknown_ids(tmp):
     return ["loss", trip, src]
 
 
+def _loss_on(**columns):
+    def build(tmp):
+        src = good(tmp)
+        return ["loss", _parquet(tmp / "trip.parquet", **columns), src]
+    return build
+
+
+def _loss_string_table(tmp):
+    src = good(tmp, labels=_labels())
+    table = pq.read_table(src)
+    table = table.set_column(0, "id", pa.array([f"p-{i:04d}" for i in range(24)]))
+    pq.write_table(table, tmp / "strings.parquet")
+    Path(src).unlink()
+    return ["loss", _parquet(tmp / "trip.parquet", anchor=[0, 1], positive=[1, 2], negative=[5, 6]),
+            str(tmp / "strings.parquet")]
+
+
 CASES = [
     # -- files --------------------------------------------------------------------------------
     Case("missing-table", lambda tmp: ["mine", str(tmp / "nothere.parquet"), "--out", str(tmp / "t.parquet")],
          r"^error: embedding table '.*nothere\.parquet' does not exist; check the path$"),
-    Case("empty-0-byte-file", score_on(empty_file), r"cannot read '.*empty\.parquet' as Parquet \(.*0 bytes.*\); "
-         r"is the file complete\?$"),
-    Case("truncated-file", mine_on(truncated), r"cannot read '.*cut\.parquet' as Parquet \(.*magic bytes.*\)"),
-    Case("text-file-named-parquet", check_on(not_parquet), r"cannot read '.*notes\.parquet' as Parquet"),
+    Case("empty-0-byte-file", score_on(empty_file), r"cannot read embedding table '.*empty\.parquet' as Parquet "
+         r"\(.*0 bytes.*\); is the file complete\?$"),
+    Case("truncated-file", mine_on(truncated), r"cannot read embedding table '.*cut\.parquet' as Parquet \(.*magic "
+         r"bytes.*\)"),
+    Case("text-file-named-parquet", check_on(not_parquet),
+         r"^error: embedding table '.*notes\.parquet' is not a Parquet file; it looks like CSV: convert it to "
+         r"Parquet$"),
     Case("folder-mixed-schemas", mine_on(mixed_folder),
          r"folder '.*dump' mixes Parquet files with different schemas \(part-0\.parquet and part-1\.parquet\)"),
-    Case("folder-without-parquet", score_on(folder_without_parquet), r"folder '.*dump' holds no \.parquet files$"),
+    Case("folder-without-parquet", score_on(folder_without_parquet),
+         r"folder '.*dump' holds no \.parquet files \(names starting with '\.' or '_' are skipped, as by pyarrow's "
+         r"dataset discovery\)$"),
+    Case("folder-with-hidden-parquet-only", check_on(folder_with_hidden_parts_only),
+         r"folder '.*dump' holds no \.parquet files \(names starting with '\.' or '_' are skipped"),
     Case("folder-with-broken-part", check_on(folder_with_broken_part),
          r"cannot read part '.*dump/part-1\.parquet' of folder '.*dump' as Parquet"),
     # -- columns of the table contract ---------------------------------------------------------
@@ -396,6 +429,25 @@ CASES = [
          r"\[mining\]\.positives_per_anchor must be a whole number, got 2\.5$"),
     Case("config-margin-zero", mine_with_config(config("[mining]\nmargin = 0\n")),
          r"\[mining\]\.margin must be > 0\.0, got 0\.0$"),
+    Case("config-margin-nan", mine_with_config(config("[mining]\nmargin = nan\n")),
+         r"^error: .*c\.toml \[mining\]\.margin must be a finite number, got nan$"),
+    Case("config-margin-inf", mine_with_config(config("[mining]\nmargin = inf\n")),
+         r"^error: .*c\.toml \[mining\]\.margin must be a finite number, got inf$"),
+    Case("config-duplicate-cosine-nan", mine_with_config(config("[mining]\nduplicate_cosine = nan\n")),
+         r"^error: .*c\.toml \[mining\]\.duplicate_cosine must be a finite number, got nan$"),
+    Case("config-weighted-cutoff-nan", mine_with_config(config('[mining]\nselect = "distance-weighted"\n'
+                                                               'weighted_cutoff = nan\n')),
+         r"^error: .*c\.toml \[mining\]\.weighted_cutoff must be a finite number, got nan$"),
+    Case("config-fmr-inf", score_with_config(config("[evaluation]\nfmr = [0.001, -inf]\n")),
+         r"\[evaluation\]\.fmr\[1\] must be a finite number, got -inf$"),
+    Case("config-margin-unreachable", mine_with_config(config("[mining]\nmargin = 4.0\n")),
+         r"c\.toml \[mining\]\.margin = 4\.0 cannot be reached with distance = squared: distances between unit "
+         r"vectors lie in \[0, 4\], so the margin must lie in \(0, 4\)$"),
+    Case("option-margin-unreachable", mine_on(good, "--distance", "euclidean", "--margin", "2"),
+         r"--margin = 2\.0 cannot be reached with distance = euclidean: .* must lie in \(0, 2\)$"),
+    Case("loss-margin-unreachable", lambda tmp: ["loss", _parquet(tmp / "trip.parquet", anchor=[0], positive=[1],
+                                                                  negative=[5]), good(tmp), "--margin", "4.5"],
+         r"margin = 4\.5 cannot be reached with distance = squared"),
     Case("config-fmr-above-1", score_with_config(config("[evaluation]\nfmr = [0.001, 1.5]\n")),
          r"\[evaluation\]\.fmr\[1\] must be <= 1\.0, got 1\.5$"),
     Case("config-confidence-1", score_with_config(config("[evaluation]\nconfidence = 1.0\n")),
@@ -419,6 +471,9 @@ CASES = [
          r"config file '.*none\.toml' does not exist$"),
     Case("sweep-fit-head-without-data", sweep_with(config('[sweep]\nmargins = [0.1]\n')),
          r"fit-head mode needs \[data\] train and heldout"),
+    Case("sweep-head-diverges", sweep_with(sweep_config(head="learning_rate = 1e308\n")),
+         r"^error: the projection head diverged at margin 0\.1 in epoch 1 of 1: the projection head's (raw outputs|"
+         r"weights|gradients) overflowed to Inf/NaN; lower \[head\] learning_rate \(now 1e\+308, try 1e\+306\)$"),
     Case("sweep-margin-zero", _sweep_margin_zero, r"\[sweep\]\.margins\[0\] must be > 0\.0, got 0\.0$"),
     # -- outputs ------------------------------------------------------------------------------
     Case("out-parent-is-a-file", _out_parent_is_a_file,
@@ -439,6 +494,22 @@ CASES = [
     Case("loss-triplets-missing", lambda tmp: ["loss", str(tmp / "none.parquet"), good(tmp)],
          r"triplet table '.*none\.parquet' does not exist; check the path$"),
     Case("loss-unknown-ids", _loss_unknown_ids, r"999"),
+    # ids of triplet tables follow the rules of embedding tables: 0.7 is no id, and 1.0 is not 1
+    Case("loss-float-ids", _loss_on(anchor=[0.7, 1.2, 20.6], positive=[1, 2, 21], negative=[5, 6, 7]),
+         r"^error: anchor ids of triplet table '.*trip\.parquet' \(column 'anchor'\) have type double; ids are int64 "
+         r"or strings \(as in the embedding table\)$"),
+    Case("loss-whole-float-ids", _loss_on(anchor=[0, 1], positive=[1.0, 2.0], negative=[5, 6]),
+         r"positive ids of triplet table .* have type double"),
+    Case("loss-bool-ids", _loss_on(anchor=[0, 1], positive=[1, 2], negative=[True, False]),
+         r"negative ids of triplet table .* have type bool"),
+    Case("loss-null-ids", _loss_on(anchor=pa.array([0, None], pa.int64()), positive=[1, 2], negative=[5, 6]),
+         r"anchor ids of triplet table .* have 1 null values \(first at row 1\); every row needs an id$"),
+    Case("loss-many-unknown-ids", _loss_on(anchor=[0, 1, 2, 3, 4, 5, 6, 7], positive=[1, 2, 3, 0, 5, 6, 7, 4],
+                                           negative=[999, 998, 997, 996, 995, 994, 8, 999]),
+         r"^error: 7 negative ids are not in the embedding table '.*good\.parquet' \(first: 999, 998, 997, 996, "
+         r"995\); use the table the ids come from$"),
+    Case("loss-integer-ids-for-string-table", _loss_string_table,
+         r"anchor ids are integers but the ids of the embedding table '.*strings\.parquet' are strings"),
 ]
 def _snapshot(root):
     """Every path under ``root`` with its kind, size and modification time."""
@@ -506,11 +577,36 @@ def _warning_lines_only(err):
 
 
 def test_check_reports_one_identity_and_singletons(tmp_path, capsys):
-    assert main(["check", one_identity(tmp_path), "--json"]) == 0
-    assert json.loads(capsys.readouterr().out)["identities"] == 1
-    assert main(["check", singletons(tmp_path), "--json"]) == 0
+    # like a linter: exit 1, the summary, then one line per problem that mine and score refuse
+    assert main(["check", one_identity(tmp_path), "--json"]) == 1
     data = json.loads(capsys.readouterr().out)
-    assert data["singletons"] == 12 and data["identities"] == 12
+    assert data["identities"] == 1 and len(data["problems"]) == 1 and "single identity" in data["problems"][0]
+    assert main(["check", singletons(tmp_path)]) == 1
+    out, err = capsys.readouterr()
+    assert err == "" and "singletons: 12\n" in out and "identities: 12\n" in out
+    problems = [line for line in out.splitlines() if line.startswith("problem: ")]
+    assert problems == [line for line in out.splitlines()[-len(problems):]]  # after the summary
+    assert len(problems) == 1 and "so there are no genuine pairs; mining or scoring needs" in problems[0]
+
+
+@pytest.mark.parametrize("make, args, code, problems", [
+    (bad_rows("nan"), [], 1, [r"has 1 rows with NaN/Inf or zero norm \(first ids: 3\); mine and score refuse them"]),
+    (bad_rows("zero"), ["--drop-invalid"], 0, []),
+    (bad_rows("all"), ["--drop-invalid"], 1, [r"every row of the table .* is invalid \(NaN/Inf or zero norm\): "
+                                              r"there is nothing to mine or score$"]),
+    (good, [], 0, []),
+])
+def test_check_exit_code_says_whether_mine_and_score_accept_the_table(tmp_path, capsys, make, args, code, problems):
+    src = make(tmp_path)
+    assert main(["check", src, "--json", *args]) == code
+    out, err = capsys.readouterr()
+    data = json.loads(out)
+    assert err == "" and data["rows"] == 24  # every row of the file, valid or not
+    assert len(data["problems"]) == len(problems)
+    for text, pattern in zip(data["problems"], problems):
+        assert re.search(pattern, text), text
+    if code == 1 and not args:  # what check calls a problem, mine refuses
+        assert main(["mine", src, "--out", str(tmp_path / "t.parquet"), "--quiet"]) == 2
 
 
 def test_identical_rows_mine_all_semi_hard(tmp_path, capsys):
@@ -716,3 +812,127 @@ def test_exact_cosine_working_set_is_bounded(rng):
     ref = np.einsum("ij,ij->i", X[a].astype(np.float64), X[b].astype(np.float64))
     np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-12)
     assert peak < 32 * 2**20  # now about 100 MB for d = 256
+
+
+# ---------------------------------------------------------------------------------------------
+# two runs racing for one output: exactly one publishes, the other stops with one line
+# ---------------------------------------------------------------------------------------------
+def _race_argv(command, tmp):
+    if command == "mine":
+        return ["mine", good(tmp, n=120, d=8, identities=20), "--out", str(tmp / "out.parquet"), "--quiet"]
+    if command == "score":
+        return ["score", good(tmp, n=120, d=8, identities=20), "--out", str(tmp / "out"), "--quiet",
+                "--bootstrap", "0", "--no-plots", "--no-clustering"]
+    return ["sweep", sweep_config()(tmp), "--out", str(tmp / "out"), "--quiet"]
+
+
+@pytest.mark.parametrize("command", ["mine", "score", "sweep"])
+def test_two_runs_racing_for_one_output(tmp_path, command):
+    argv = _race_argv(command, tmp_path)
+    inputs = _snapshot(tmp_path)
+    # started together: both pass the start-of-run check while the other is still importing or
+    # computing, or the later one already finds the output; either way exactly one may publish
+    procs = [subprocess.Popen([sys.executable, "-m", "tripletkit", *argv], cwd=tmp_path, text=True,
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE) for _ in range(2)]
+    results = [(p.wait(timeout=300), *p.communicate()) for p in procs]
+    codes = sorted(code for code, _, _ in results)
+    assert codes == [0, 2], results
+    _, out, err = next(r for r in results if r[0] == 2)
+    assert out == "" and err.count("\n") == 1, err
+    assert re.match(r"error: output '.*out(\.parquet)?' already exists(: it appeared while this run was writing "
+                    r"\(another run with the same output\?\); nothing was written)?, pass --force|"
+                    r"error: output '.*out(\.parquet)?' already exists; pass --force", err), err
+    published = set(_snapshot(tmp_path)) - set(inputs)
+    assert not [p for p in published if Path(p).name.startswith(".")]  # no temporary left by the loser
+    if command == "mine":
+        assert published == {"out.parquet", "out.duplicates.parquet"}
+        assert pq.read_table(tmp_path / "out.parquet").num_rows > 0
+    else:
+        assert json.loads((tmp_path / "out" / ("report.json" if command == "score" else "sweep.json")).read_text())
+
+
+def test_demo_refuses_an_output_folder_that_appears_meanwhile(tmp_path, monkeypatch, capsys):
+    from tripletkit import demo
+
+    out = tmp_path / "demo"
+    stage = demo._stage
+
+    def stage_and_race(progress, text):
+        stage(progress, text)
+        if text.startswith("scoring the held-out"):
+            out.mkdir()  # another run's folder, created (empty) while this demo is half way
+
+    monkeypatch.setattr(demo, "_stage", stage_and_race)
+    with pytest.raises(TripletkitError, match=r"^output '.*demo' already exists: it appeared while this run was "
+                                              r"writing"):
+        demo.run_demo(out, quiet=True, sweep=False)
+    assert os.listdir(tmp_path) == ["demo"] and os.listdir(out) == []
+
+
+# ---------------------------------------------------------------------------------------------
+# damaged data pages (footer intact): every file the package writes carries page checksums
+# ---------------------------------------------------------------------------------------------
+def _damage_page(path, row_group=0, column=0):
+    """Flip a byte inside the last data page of a column chunk; the footer stays intact."""
+    meta = pq.ParquetFile(path).metadata
+    chunk = meta.row_group(row_group).column(column)
+    start = chunk.dictionary_page_offset if chunk.has_dictionary_page else chunk.data_page_offset
+    data = bytearray(Path(path).read_bytes())
+    data[start + chunk.total_compressed_size - 2] ^= 0x5A
+    Path(path).write_bytes(bytes(data))
+
+
+def test_damaged_triplet_table_names_file_and_row_group(tmp_path, capsys, monkeypatch):
+    from tripletkit import mining
+
+    monkeypatch.setattr(mining, "_ROW_GROUP_ROWS", 64)  # several row groups from a small table
+    src = good(tmp_path, n=60, d=6, identities=10)
+    out = tmp_path / "t.parquet"
+    assert main(["mine", src, "--out", str(out), "--quiet", "--regimes", "easy", "semi-hard", "hard"]) == 0
+    assert pq.ParquetFile(out).metadata.num_row_groups >= 3
+    capsys.readouterr()
+    assert main(["loss", str(out), src]) == 0
+    capsys.readouterr()
+    _damage_page(out, row_group=2, column=1)  # the positive ids of the third row group
+    before = _snapshot(tmp_path)
+    assert main(["loss", str(out), src]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == "" and captured.err.count("\n") == 1
+    assert re.match(r"error: triplet table '.*t\.parquet' is damaged: row group 2 fails its page checksum \(the "
+                    r"data changed after it was written\); restore the file from a copy or write it again$",
+                    captured.err)
+    assert _snapshot(tmp_path) == before
+
+
+@pytest.mark.parametrize("which", ["embeddings", "duplicates", "demo"])
+def test_every_written_parquet_file_carries_page_checksums(tmp_path, which):
+    from tripletkit._io import read_parquet
+
+    if which == "embeddings":
+        path = Path(good(tmp_path))
+    elif which == "duplicates":
+        src = tmp_path / "twins.parquet"
+        X = _rng(tmp_path).normal(size=(12, 4))
+        X[1] = X[0]  # rows 0 and 1 under two labels: one suspect duplicate
+        write_table(src, np.arange(12), np.repeat(np.arange(6), 2) + np.r_[0, 1, np.zeros(10, int)], X)
+        assert main(["mine", str(src), "--out", str(tmp_path / "t.parquet"), "--quiet"]) == 0
+        path = tmp_path / "t.duplicates.parquet"
+        assert pq.read_table(path).num_rows >= 1
+    else:
+        from tripletkit.demo import generate
+
+        path = Path(generate(tmp_path / "demo", seed=7)["heldout_embeddings"])
+    _damage_page(path, column=0)
+    with pytest.raises(TripletkitError, match=r"is damaged: row group 0 fails its page checksum"):
+        read_parquet(path, "table")
+
+
+def test_raw_vectors_beyond_float32_range_name_the_real_problem(rng):
+    from tripletkit.metrics.health import mean_impostor_cosine
+
+    X = rng.normal(size=(10, 4))
+    X[[3, 8]] *= 1e300  # finite in float64, Inf once cast to float32
+    with pytest.raises(TripletkitError, match=r"^embeddings has 2 rows with values outside float32's range \(about "
+                                              r"1\.2e-38 to 3\.4e38 in absolute value; first row positions: \[3, 8\]\); "
+                                              r"divide the rows by their norms \(in float64\) first$"):
+        mean_impostor_cosine(X, np.repeat(np.arange(5), 2))

@@ -93,3 +93,21 @@ def test_package_exports_the_verbs_as_functions():
     importlib.import_module("tripletkit.sweep")  # importing the submodule must not shadow the verb
     for name in ("check", "mine", "score", "sweep", "run_demo", "triplet_loss_report"):
         assert callable(getattr(tripletkit, name)) and not isinstance(getattr(tripletkit, name), type(tripletkit))
+
+
+def test_starting_the_command_imports_nothing_heavy():
+    # numpy, pyarrow and faiss load inside the command's Ctrl-C handling (tripletkit/__main__.py),
+    # so importing the package and the parser must not load them
+    code = ("import sys, tripletkit, tripletkit.cli, tripletkit.__main__\n"
+            "tripletkit.cli.build_parser()\n"
+            "print(sorted(m for m in ('numpy', 'pyarrow', 'faiss', 'sklearn', 'matplotlib') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
+def test_console_script_entry_point_is_the_interrupt_safe_one():
+    import tomllib
+    from pathlib import Path
+
+    project = tomllib.loads((Path(__file__).resolve().parents[1] / "pyproject.toml").read_text())["project"]
+    assert project["scripts"]["tripletkit"] == "tripletkit.__main__:main"

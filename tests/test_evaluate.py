@@ -227,7 +227,7 @@ def test_pair_list_same_disagreement_names_the_first_pair(tmp_path, table_path):
 
 def test_pair_list_unknown_id_is_an_error(tmp_path, table_path):
     plist = _write_pairs(tmp_path / "pairs.parquet", ["r000", "r001"], ["r002", "nobody"])
-    with pytest.raises(TripletkitError, match=r"1 'right' ids of pair list .* not in the embedding table \(first: 'nobody'\)"):
+    with pytest.raises(TripletkitError, match=r"1 'right' ids of pair list .* not in the embedding table '.*heldout\.parquet' \(first: 'nobody'\)"):
         score(table_path, config=dataclasses.replace(FAST, pairs=str(plist)), quiet=True)
 
 

@@ -258,3 +258,27 @@ def test_parameter_and_input_errors(rng):
     one = EmbeddingTable.from_arrays(np.arange(3), np.zeros(3, dtype=int), rng.normal(size=(3, 2)))
     with pytest.raises(TripletkitError, match="fewer than 2 identities"):
         fit_head(one, 0.2, quiet=True)
+
+
+@pytest.mark.parametrize("optimizer, hidden", [("adam", 0), ("sgd", 0), ("adam", 16)])
+def test_a_diverging_fit_says_where_and_what_to_change(rng, optimizer, hidden):
+    import warnings
+
+    table = _toy(rng)
+    # A step of about 1e308 puts the weights at the edge of float64: the next products overflow.
+    config = HeadConfig(dim=4, hidden=hidden, epochs=3, learning_rate=1e308, optimizer=optimizer, seed=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no RuntimeWarning lines on the way
+        with pytest.raises(TripletkitError, match=r"^the projection head diverged at margin 0\.2 in epoch [123] of 3: "
+                                                  r"the projection head's (raw outputs|weights|gradients) overflowed "
+                                                  r"to Inf/NaN; lower \[head\] learning_rate \(now 1e\+308, try "
+                                                  r"1e\+306\)$"):
+            fit_head(table, 0.2, config, ALL_REGIMES, quiet=True)
+
+
+def test_huge_but_finite_weights_are_not_a_divergence(rng):
+    # outputs are normalised, so weights of 1e200 (raw outputs of about 1e200) still give directions
+    table = _toy(rng)
+    head, history = fit_head(table, 0.2, HeadConfig(dim=4, epochs=2, learning_rate=1e200, seed=0), ALL_REGIMES,
+                             quiet=True)
+    assert np.isfinite(head.transform(table.embeddings)).all() and len(history) == 2

@@ -212,3 +212,32 @@ def test_sigterm_inside_main_becomes_exit_143(tmp_path, monkeypatch, capsys):
     assert main(["score", str(tmp_path / "t.parquet"), "--out", str(out / "r"), "--quiet", "--bootstrap", "0"]) == 143
     assert capsys.readouterr().err.splitlines()[-1] == "terminated: no output was written"
     assert list(out.iterdir()) == []
+
+
+def _entry(kind):
+    if kind == "python -m":
+        return ["-m", "tripletkit"]
+    script = Path(sys.executable).with_name("tripletkit")  # the console script of this environment
+    if not script.is_file():
+        pytest.skip("the tripletkit console script is not installed next to this Python")
+    return [str(script)]
+
+
+@pytest.mark.parametrize("entry", ["python -m", "console script"])
+@pytest.mark.parametrize("after", ["tripletkit.cli", "numpy", "pyarrow", "faiss"])
+def test_ctrl_c_while_the_command_starts_is_one_line(inputs, tmp_path, entry, after):
+    # -X importtime prints a line as each import completes: the interrupt is sent once the given
+    # module has loaded, so it lands in the imports that follow or in the run itself; wherever it
+    # lands, the answer is the same one line and exit code 130 (not a KeyboardInterrupt traceback)
+    before = _listing(inputs)
+    proc = subprocess.Popen([sys.executable, "-X", "importtime", *_entry(entry), "mine", str(inputs / "mine.parquet"),
+                             "--out", str(tmp_path / "triplets.parquet")], cwd=tmp_path, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    watcher = _Watcher(proc)
+    assert watcher.wait_for(rf"^import time:.*\| +{re.escape(after)}$", _REACH_SECONDS), watcher.finish()[-5:]
+    proc.send_signal(signal.SIGINT)
+    lines = watcher.finish()
+    own = [line for line in lines if not line.startswith("import time:")]
+    assert proc.returncode == 130, (proc.returncode, own[-5:])
+    assert own == ["interrupted: no output was written"], own
+    assert _listing(tmp_path) == [] and _listing(inputs) == before

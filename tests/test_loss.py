@@ -599,3 +599,16 @@ def test_regime_errors():
         regime_codes(["far"], [0.1])
     with pytest.raises(TripletkitError, match=r"d_ap has shape \(2,\) and d_an has shape \(3,\); give one"):
         regime_codes([0.1, 0.2], [0.1, 0.2, 0.3])
+
+
+def test_huge_finite_raw_outputs_give_the_loss_of_their_directions(rng):
+    # raw outputs of 1e200 overflow a float32 cast and a float64 sum of squares; their unit
+    # vectors, all the loss depends on, are those of the rows divided by 1e200
+    a, p, n = (rng.normal(size=(6, 4)) for _ in range(3))
+    big = 1e200
+    np.testing.assert_allclose(triplet_loss(a * big, p * big, n * big), triplet_loss(a, p, n), rtol=1e-12, atol=1e-15)
+    loss, g_a, g_p, g_n = triplet_loss_grad(a * big, p * big, n * big, margin=0.5)
+    ref = triplet_loss_grad(a, p, n, margin=0.5)
+    assert loss == pytest.approx(ref[0], rel=1e-12)
+    # d(x/|x|)/dx scales with 1/|x|: the gradients shrink by the same factor
+    np.testing.assert_allclose(g_a * big, ref[1], rtol=1e-9, atol=1e-12)

@@ -26,7 +26,7 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from tripletkit._errors import TripletkitError
-from tripletkit.config import EvaluationConfig, MiningConfig
+from tripletkit.config import MAX_DISTANCE, EvaluationConfig, MiningConfig
 from tripletkit.evaluate import score
 from tripletkit.loss import REGIMES
 from tripletkit.metrics.verification import verify_all_pairs
@@ -104,9 +104,11 @@ def test_mined_triplets_satisfy_the_regime_definitions(table, options):
         try:
             s = mine((ids, labels, X), return_triplets=True, quiet=True, index="exact", **options)
         except TripletkitError as exc:
-            # the one legal refusal for a valid table: distance-weighted needs d >= 2
+            # the legal refusals for a valid table: distance-weighted needs d >= 2, and a margin must
+            # stay below the largest distance between unit vectors (2.5 is refused for euclidean)
             assert "\n" not in str(exc)
-            assert options["select"] == "distance-weighted" and X.shape[1] < 2, str(exc)
+            unreachable = options["margin"] >= MAX_DISTANCE[options["distance"]]
+            assert unreachable or (options["select"] == "distance-weighted" and X.shape[1] < 2), str(exc)
             return
     t = s.triplets
     event("triplets mined" if s.n_triplets else "no triplet")

@@ -1,6 +1,8 @@
 """Embedding table: reading, conversion, validation errors, normalisation, atomic writing."""
 
 import os
+import re
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -181,7 +183,157 @@ def test_check_summary(tmp_path, rng):
     emb[6] = np.nan
     write_table(tmp_path / "t.parquet", np.arange(7), np.array([0, 0, 0, 1, 1, 2, 2]), emb)
     out = check(tmp_path / "t.parquet")
-    # Row 6 (label 2) is invalid, so label 2 is left with one sample: a singleton.
-    assert out["rows"] == 6 and out["dim"] == 3 and out["identities"] == 3
+    # rows counts every row of the file; the other counts are of the valid rows. Row 6 (label 2)
+    # is invalid, so label 2 is left with one sample: a singleton.
+    assert out["rows"] == 7 and out["dim"] == 3 and out["identities"] == 3
     assert out["singletons"] == 1 and out["invalid_rows"] == 1 and out["unit_norm"] is False
     assert out["samples_per_identity"] == {"min": 1, "median": 2.0, "max": 3}
+    # mine and score would refuse the NaN row: a problem, unless the rows are dropped
+    assert len(out["problems"]) == 1
+    assert re.match(r"table '.*t\.parquet' has 1 rows with NaN/Inf or zero norm \(first ids: 6\); mine and score "
+                    r"refuse them: fix them or pass --drop-invalid$", out["problems"][0])
+    assert check(tmp_path / "t.parquet", drop_invalid=True)["problems"] == []
+
+
+@pytest.mark.parametrize("labels, problem", [
+    (np.zeros(6, np.int64), r"has a single identity \(label 0\), so there are no impostor pairs; mining or scoring "
+                            r"needs at least 2 identities"),
+    (np.arange(6), r"every identity of table .* has one row, so there are no genuine pairs; mining or scoring needs"),
+])
+def test_check_lists_what_mine_and_score_refuse(tmp_path, rng, labels, problem):
+    write_table(tmp_path / "t.parquet", np.arange(6), labels, rng.normal(size=(6, 3)))
+    out = check(tmp_path / "t.parquet")
+    assert out["rows"] == 6 and out["invalid_rows"] == 0
+    assert len(out["problems"]) == 1 and re.search(problem, out["problems"][0])
+
+
+def test_check_of_a_table_with_every_row_invalid(tmp_path):
+    write_table(tmp_path / "t.parquet", np.arange(4), np.array([0, 0, 1, 1]), np.zeros((4, 3)))
+    out = check(tmp_path / "t.parquet")
+    assert out["rows"] == 4 and out["invalid_rows"] == 4 and out["identities"] == 2
+    assert out["problems"] == [f"every row of the table in {tmp_path / 't.parquet'} is invalid (NaN/Inf or zero "
+                               "norm): there is nothing to mine or score"]
+
+
+def test_positions_take_ids_of_the_table_kind_only():
+    t = EmbeddingTable.from_arrays(np.array([1, 3, 5]), np.array([0, 0, 1]), np.eye(3))
+    assert t.positions(np.array([5, 1])).tolist() == [2, 0]
+    # a float is no id: 0.7 must not become 0, nor 5.0 become 5
+    with pytest.raises(TripletkitError, match=r"^anchor ids have type double; ids are int64 or strings"):
+        t.positions(np.array([0.7, 1.2]), what="anchor ids")
+    with pytest.raises(TripletkitError, match=r"type double"):
+        t.positions(np.array([5.0]))
+    with pytest.raises(TripletkitError, match=r"^ids are strings but the ids of the embedding table are integers"):
+        t.positions(["5"])
+    with pytest.raises(TripletkitError, match=r"mix integers and strings"):
+        t.positions(np.array([5, "a"], dtype=object))
+    s = EmbeddingTable.from_arrays(np.array(["a", "b", "c"]), np.array([0, 0, 1]), np.eye(3))
+    assert s.positions(["c", "a"]).tolist() == [2, 0]
+    with pytest.raises(TripletkitError, match=r"^ids are integers but the ids of the embedding table are strings"):
+        s.positions([1])
+    with pytest.raises(TripletkitError, match=r"^3 ids are not in the embedding table \(first: 'x', 'y'\)"):
+        s.positions(["x", "a", "y", "x"])
+
+
+# ---------------------------------------------------------------------------------------------
+# page checksums: written into every file, verified on every read
+# ---------------------------------------------------------------------------------------------
+def damage_page(path, row_group=0, column=0):
+    """Flip a byte near the end of a column chunk (inside its last data page's values); the footer
+    stays intact, so only the page's checksum can tell."""
+    meta = pq.ParquetFile(path).metadata
+    chunk = meta.row_group(row_group).column(column)
+    start = chunk.dictionary_page_offset if chunk.has_dictionary_page else chunk.data_page_offset
+    data = bytearray(Path(path).read_bytes())
+    data[start + chunk.total_compressed_size - 2] ^= 0x5A
+    Path(path).write_bytes(bytes(data))
+
+
+def test_written_tables_carry_checksums_that_reading_verifies(tmp_path, rng):
+    path = tmp_path / "t.parquet"
+    X = rng.normal(size=(40, 8))
+    write_table(path, np.arange(40), np.repeat(np.arange(8), 5), X)
+    before = EmbeddingTable.read(path).embeddings
+    damage_page(path, column=2)  # the embedding column
+    with pytest.raises(TripletkitError, match=r"^embedding table '.*t\.parquet' is damaged: row group 0 fails its "
+                                              r"page checksum \(the data changed after it was written\); restore "
+                                              r"the file from a copy or write it again$"):
+        EmbeddingTable.read(path)
+    assert before.shape == (40, 8)
+
+
+def test_a_damaged_part_of_a_folder_is_named_with_its_row_group(tmp_path, rng):
+    (tmp_path / "dump").mkdir()
+    for i in range(3):
+        write_table(tmp_path / "dump" / f"part-{i}.parquet", np.arange(10) + 10 * i, np.repeat(np.arange(5), 2) + 5 * i,
+                    rng.normal(size=(10, 4)))
+    damage_page(tmp_path / "dump" / "part-1.parquet", column=2)
+    with pytest.raises(TripletkitError, match=r"^part '.*dump/part-1\.parquet' of folder '.*dump' is damaged: row "
+                                              r"group 0 fails its page checksum"):
+        EmbeddingTable.read(tmp_path / "dump")
+
+
+def test_a_file_written_without_checksums_is_still_read(tmp_path, rng):
+    # other tools may not write page checksums: verification only checks the pages that carry one
+    X = rng.normal(size=(12, 3)).astype(np.float32)
+    pq.write_table(to_arrow(np.arange(12), np.repeat(np.arange(4), 3), X), tmp_path / "plain.parquet",
+                   write_page_checksum=False)
+    assert EmbeddingTable.read(tmp_path / "plain.parquet").n == 12
+
+
+def test_files_starting_with_dot_or_underscore_are_not_parts(tmp_path, rng):
+    # pyarrow's dataset discovery skips them (hidden files, _SUCCESS markers, _temporary/ of writers)
+    folder = tmp_path / "dump"
+    (folder / "site=a").mkdir(parents=True)
+    (folder / "_temporary" / "0").mkdir(parents=True)
+    write_table(folder / "site=a" / "part-0.parquet", np.arange(6), np.repeat(np.arange(3), 2), rng.normal(size=(6, 4)))
+    write_table(folder / "part-1.parquet", np.arange(6, 12), np.repeat(np.arange(3), 2), rng.normal(size=(6, 4)))
+    for hidden in (folder / ".part-2.parquet", folder / "_part-3.parquet", folder / "_temporary" / "0" / "p.parquet"):
+        write_table(hidden, np.arange(100, 106), np.zeros(6, np.int64), rng.normal(size=(6, 4)))
+    (folder / "site=a" / ".part-0.parquet.crc").write_bytes(b"\x00\x01")
+    table = EmbeddingTable.read(folder)
+    assert sorted(table.ids.tolist()) == list(range(12))
+    import pyarrow.dataset as ds
+
+    assert ds.dataset(str(folder), format="parquet").count_rows() == 12  # the same files as pyarrow's discovery
+
+
+# ---------------------------------------------------------------------------------------------
+# finite float64 values beyond float32's range keep their direction
+# ---------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("scale", [1e300, 1e-300, 1e39, 1e-39])
+def test_float64_rows_beyond_float32_range_are_normalised_not_refused(tmp_path, rng, scale):
+    import warnings
+
+    X = rng.normal(size=(12, 5))
+    labels = np.repeat(np.arange(4), 3)
+    reference = EmbeddingTable.from_arrays(np.arange(12), labels, X)
+    wide = X.copy()
+    wide[[2, 7]] *= scale  # two rows far outside float32's range, the others ordinary
+    path = tmp_path / "wide.parquet"
+    pq.write_table(pa.table({"id": np.arange(12), "label": labels,
+                             "embedding": pa.array(list(wide), pa.list_(pa.float64()))}), path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no RuntimeWarning about overflow in a cast
+        from_file = EmbeddingTable.read(path)
+        from_arrays = EmbeddingTable.from_arrays(np.arange(12), labels, wide)
+    for t in (from_file, from_arrays):
+        assert t.dropped == 0 and not t.unit_norm
+        # the same unit vectors up to float32 rounding (scaling by 1e300 is itself rounded in float64)
+        np.testing.assert_allclose(t.embeddings, reference.embeddings, rtol=0, atol=2e-7)
+        # rows inside float32's range are the bytes of the ordinary table
+        keep = np.setdiff1d(np.arange(12), [2, 7])
+        assert np.array_equal(t.embeddings[keep], reference.embeddings[keep])
+    assert np.array_equal(from_file.embeddings, from_arrays.embeddings)
+
+
+def test_float64_rows_beyond_float32_range_pass_check(tmp_path, capsys, rng):
+    from tripletkit.cli import main
+
+    X = rng.normal(size=(12, 4)) * 1e300
+    path = tmp_path / "wide.parquet"
+    pq.write_table(pa.table({"id": np.arange(12), "label": np.repeat(np.arange(4), 3),
+                             "embedding": pa.array(list(X), pa.list_(pa.float64()))}), path)
+    assert main(["check", str(path), "--json"]) == 0
+    out, err = capsys.readouterr()
+    assert err == "" and '"invalid_rows": 0' in out

@@ -2,15 +2,20 @@
 
 The public verbs are the commands of the ``tripletkit`` CLI: :func:`check`, :func:`mine`,
 :func:`score`, :func:`sweep`, :func:`run_demo`, and :func:`triplet_loss_report` (``tripletkit loss``).
+
+They are imported lazily, on first use: ``import tripletkit`` loads no numpy, pyarrow or faiss,
+so the command starts (and can be interrupted) quickly.
 """
 
-from ._blas import hint_openblas_coretype
+import importlib
+import sys
+import types
 
-hint_openblas_coretype()  # before anything imports faiss (see tripletkit/_blas.py)
+from ._blas import hint_before_faiss
+
+hint_before_faiss()  # faiss's OpenBLAS gets kernels this CPU supports (see tripletkit/_blas.py)
 
 from ._errors import TripletkitError, TripletkitWarning  # noqa: E402
-from .config import load_config  # noqa: E402
-from .table import EmbeddingTable, check, read_table, write_table  # noqa: E402
 
 __version__ = "0.1.0"
 
@@ -21,12 +26,40 @@ __all__ = [
     "REGIMES", "__version__",
 ]
 
-# Imported eagerly: a lazy ``sweep`` would be replaced by the submodule of the same name as
-# soon as anything imported ``tripletkit.sweep``.
-from .demo import run_demo  # noqa: E402
-from .evaluate import score  # noqa: E402
-from .head import ProjectionHead, fit_head  # noqa: E402
-from .loss import REGIMES, batch_all_loss, batch_hard_loss, triplet_loss, triplet_loss_grad  # noqa: E402
-from .mining import mine  # noqa: E402
-from .sweep import sweep  # noqa: E402
-from .triplets import triplet_loss_report  # noqa: E402
+#: The module of each lazily imported public name.
+_LAZY = {
+    "EmbeddingTable": "table", "check": "table", "read_table": "table", "write_table": "table",
+    "load_config": "config", "mine": "mining", "score": "evaluate", "sweep": "sweep", "run_demo": "demo",
+    "triplet_loss_report": "triplets", "fit_head": "head", "ProjectionHead": "head", "triplet_loss": "loss",
+    "triplet_loss_grad": "loss", "batch_all_loss": "loss", "batch_hard_loss": "loss", "REGIMES": "loss",
+}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))
+
+
+class _Package(types.ModuleType):
+    """The package module: a public verb keeps its name when the submodule of the same name loads.
+
+    Importing ``tripletkit.sweep`` (the module) binds it to the package attribute ``sweep``; the
+    public function :func:`sweep` keeps that name instead (``importlib.import_module`` still
+    returns the module).
+    """
+
+    def __setattr__(self, name, value):
+        if name in _LAZY and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package

@@ -13,17 +13,20 @@ instructions this CPU has: ``SKYLAKEX`` with AVX-512 (F, BW, DQ, VL), ``HASWELL`
 FMA; nothing otherwise (then OpenBLAS detects as usual). numpy is imported first, so its own
 OpenBLAS (which knows these CPUs) has already chosen its kernels and is unaffected. Only Linux
 on x86-64 is touched: that is where the flags are read (``/proc/cpuinfo``).
+
+``import tripletkit`` stays light (no numpy): :func:`hint_before_faiss` only registers an import
+hook that sets the variable the moment faiss is first imported, by any module, and then removes
+itself.
 """
 
 from __future__ import annotations
 
+import importlib.abc
 import os
 import platform
 import sys
 
-import numpy  # noqa: F401  (loaded before the variable is set; see above)
-
-__all__ = ["coretype_for", "hint_openblas_coretype"]
+__all__ = ["coretype_for", "hint_openblas_coretype", "hint_before_faiss"]
 
 _AVX512 = {"avx512f", "avx512bw", "avx512dq", "avx512vl"}
 
@@ -59,9 +62,33 @@ def hint_openblas_coretype():
     """
     if "OPENBLAS_CORETYPE" in os.environ or "faiss" in sys.modules:
         return None
+    import numpy  # noqa: F401  (loaded before the variable is set; see above)
+
     if not sys.platform.startswith("linux") or platform.machine().lower() not in ("x86_64", "amd64"):
         return None
     core = coretype_for(_cpu_flags())
     if core is not None:
         os.environ["OPENBLAS_CORETYPE"] = core
     return core
+
+
+class _BeforeFaiss(importlib.abc.MetaPathFinder):
+    """An import hook that runs :func:`hint_openblas_coretype` when faiss is first imported."""
+
+    def find_spec(self, name, path=None, target=None):
+        if name == "faiss":
+            _remove_hook()
+            hint_openblas_coretype()
+        return None  # the ordinary finders load the module
+
+
+def _remove_hook():
+    sys.meta_path[:] = [f for f in sys.meta_path if not isinstance(f, _BeforeFaiss)]
+
+
+def hint_before_faiss():
+    """Arrange for :func:`hint_openblas_coretype` to run just before faiss is first imported."""
+    if "faiss" in sys.modules:
+        return
+    if not any(isinstance(f, _BeforeFaiss) for f in sys.meta_path):
+        sys.meta_path.insert(0, _BeforeFaiss())

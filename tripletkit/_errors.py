@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
-__all__ = ["TripletkitError", "TripletkitWarning"]
+__all__ = ["TripletkitError", "TripletkitWarning", "INTERRUPTED"]
+
+#: What the command prints on Ctrl-C (exit code 130), whenever it arrives.
+INTERRUPTED = "interrupted: no output was written"
 
 
 class TripletkitError(ValueError):

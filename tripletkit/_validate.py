@@ -9,7 +9,69 @@ import numpy as np
 
 from ._errors import TripletkitError
 
-__all__ = ["as_embeddings", "as_codes", "check_same_length", "l2_normalise"]
+__all__ = ["as_embeddings", "as_codes", "check_same_length", "l2_normalise", "float32_rows", "row_norms"]
+
+_F32_MAX = float(np.finfo(np.float32).max)
+_F32_TINY = float(np.finfo(np.float32).tiny)  # the smallest normal float32
+# Rows processed at once when scanning a matrix (bounds the temporary memory).
+_ROW_BLOCK = 65536
+
+
+def float32_rows(x):
+    """Float rows as float32 rows pointing the same way, and the number of rows rescaled.
+
+    A row whose largest absolute value lies outside float32's normal range (above about 3.4e38 or
+    below about 1.2e-38, as finite float64 values can) is first multiplied by a power of two
+    (exact in float64) that brings it to [0.5, 1): cast as it is, it would overflow to Inf or
+    flush to zero, and its direction, all that the unit vector keeps, would be lost. Every other
+    row is cast as it is, so a float64 table and its float32 copy give the same unit vectors.
+    Rows with NaN or Inf are cast as they are (and found by the finiteness check).
+
+    Parameters
+    ----------
+    x : ndarray of shape (n, d)
+        float64 (or another float type wider than float32).
+
+    Returns
+    -------
+    rows : ndarray of float32, shape (n, d), C-contiguous
+    rescaled : int
+        How many rows were rescaled (their norms are no longer those of the input).
+    """
+    out = np.empty(x.shape, dtype=np.float32)
+    rescaled = 0
+    for s in range(0, x.shape[0], _ROW_BLOCK):
+        blk = np.asarray(x[s:s + _ROW_BLOCK], dtype=np.float64)
+        with np.errstate(invalid="ignore"):
+            scale = np.abs(blk).max(axis=1, initial=0.0)
+        wide = np.isfinite(scale) & ((scale > _F32_MAX) | ((scale > 0) & (scale < _F32_TINY)))
+        if wide.any():
+            blk = blk.copy()
+            blk[wide] = np.ldexp(blk[wide], -np.frexp(scale[wide])[1][:, None])
+            rescaled += int(wide.sum())
+        with np.errstate(over="ignore"):  # only rows that hold Inf already
+            out[s:s + _ROW_BLOCK] = blk
+    return out, rescaled
+
+
+def row_norms(arr):
+    """L2 norms of the rows of a float matrix, in float64, without overflow or underflow.
+
+    The plain sum of squares is used where it is exact enough (every float32 row, and float64 rows
+    of ordinary size); a float64 row whose sum of squares overflows or underflows is scaled by its
+    largest absolute value first. Rows with NaN or Inf give NaN or Inf.
+    """
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        norms = np.sqrt(np.einsum("ij,ij->i", arr, arr, dtype=np.float64))
+        if arr.dtype.itemsize > 4 and arr.size:
+            redo = np.flatnonzero(~(norms < 2.0**500) | (norms < 2.0**-450))
+            if redo.size:
+                rows = np.asarray(arr[redo], dtype=np.float64)
+                scale = np.abs(rows).max(axis=1)
+                ok = np.isfinite(scale) & (scale > 0)
+                scaled = rows[ok] / scale[ok, None]
+                norms[redo[ok]] = scale[ok] * np.sqrt(np.einsum("ij,ij->i", scaled, scaled))
+    return norms
 
 
 def as_embeddings(x, name="embeddings", *, normalise=False, dtype=np.float32):
@@ -32,7 +94,6 @@ def as_embeddings(x, name="embeddings", *, normalise=False, dtype=np.float32):
         raise TripletkitError(f"{name} has dimension 0; every row needs at least one value")
     if not np.issubdtype(arr.dtype, np.number) or np.issubdtype(arr.dtype, np.complexfloating):
         raise TripletkitError(f"{name} must hold real numbers, got dtype {arr.dtype}")
-    arr = np.ascontiguousarray(arr, dtype=dtype)
     bad = ~np.isfinite(arr).all(axis=1)
     if bad.any():
         first = np.flatnonzero(bad)[:5].tolist()
@@ -40,14 +101,32 @@ def as_embeddings(x, name="embeddings", *, normalise=False, dtype=np.float32):
             f"{name} has {int(bad.sum())} rows with NaN or Inf (first row positions: {first}); "
             "remove or repair them"
         )
+    if np.dtype(dtype) == np.float32 and arr.dtype.kind == "f" and arr.dtype.itemsize > 4:
+        cast, rescaled = float32_rows(arr)
+        if rescaled and not normalise:
+            # raw vectors keep their length: rescaling only some rows would change what they say
+            wide = np.flatnonzero(_outside_float32(arr))
+            raise TripletkitError(
+                f"{name} has {wide.size} rows with values outside float32's range (about 1.2e-38 to 3.4e38 in "
+                f"absolute value; first row positions: {wide[:5].tolist()}); divide the rows by their norms (in "
+                "float64) first"
+            )
+        arr = cast
+    else:
+        arr = np.ascontiguousarray(arr, dtype=dtype)
     if normalise:
         arr = l2_normalise(arr, name=name)
     return arr
 
 
+def _outside_float32(arr):
+    scale = np.abs(arr).max(axis=1, initial=0.0)
+    return (scale > _F32_MAX) | ((scale > 0) & (scale < _F32_TINY))
+
+
 def l2_normalise(arr, name="embeddings"):
-    """Divide each row of a float32 matrix by its L2 norm (computed in float64)."""
-    norms = np.sqrt(np.einsum("ij,ij->i", arr, arr, dtype=np.float64))
+    """Divide each row of a float matrix by its L2 norm (computed in float64, see :func:`row_norms`)."""
+    norms = row_norms(arr)
     zero = norms == 0
     if zero.any():
         first = np.flatnonzero(zero)[:5].tolist()

@@ -1,5 +1,8 @@
 """Command line: argument parsing only. Every command calls one public function of the package.
 
+Importing this module is light (no numpy, pyarrow or faiss): each command imports what it needs
+when it runs, inside :func:`main`'s handling of Ctrl-C.
+
 Options of ``mine``, ``score`` and ``sweep`` are generated from the config dataclasses
 (:mod:`tripletkit.config`), so every config key has the option of the same name and the two
 cannot drift apart. A command-line option overrides the config file.
@@ -19,10 +22,9 @@ import typing
 import warnings
 
 from . import __version__
-from ._errors import TripletkitError
+from ._errors import INTERRUPTED, TripletkitError
 from ._io import check_not_input, jsonable
 from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
-from .table import require_pairs
 
 __all__ = ["main", "build_parser"]
 
@@ -194,10 +196,8 @@ def _run(args):
         return triplet_loss_report(args.triplets, args.table, margin=args.margin, distance=args.distance,
                                    soft=args.soft, table_options=_table_kwargs(args))
     if args.command == "mine":
-        from .mining import mine
-        from .table import EmbeddingTable
-
-        from .mining import duplicates_path
+        from .mining import duplicates_path, mine
+        from .table import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)
@@ -213,8 +213,7 @@ def _run(args):
                     table_options=_table_kwargs(args), **kwargs)
     if args.command == "score":
         from .evaluate import score
-
-        from .table import EmbeddingTable
+        from .table import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "evaluation", EvaluationConfig)
         compute = _compute(args)
@@ -294,9 +293,10 @@ def main(argv=None):
     """Entry point of the ``tripletkit`` command; returns the exit code.
 
     Exit codes: 0 done; 2 bad input (one line ``error: ...`` on stderr, also for running out of
-    memory or an operating-system error such as a full disk); 130 interrupted (Ctrl-C), 143
-    terminated (SIGTERM); 1 an internal error (a bug: the line says so, ``--debug`` shows the
-    traceback). Warnings print as one line each, ``warning: ...``.
+    memory or an operating-system error such as a full disk); 1 ``check`` found problems (one line
+    ``problem: ...`` each after the summary) or an internal error (a bug: the line says so,
+    ``--debug`` shows the traceback); 130 interrupted (Ctrl-C), 143 terminated (SIGTERM).
+    Warnings print as one line each, ``warning: ...``.
     """
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -319,7 +319,7 @@ def main(argv=None):
     except KeyboardInterrupt:
         if args.debug:
             raise
-        print("interrupted: no output was written", file=sys.stderr)
+        print(INTERRUPTED, file=sys.stderr)
         return 130
     except _Terminated as exc:
         print("terminated: no output was written", file=sys.stderr)
@@ -339,11 +339,16 @@ def main(argv=None):
         return 1
     finally:
         signal.signal(signal.SIGTERM, previous)
+    # check reports like a linter: each problem that would make mine or score refuse the table
+    # on its own line, and exit code 1
+    problems = result.get("problems") if args.command == "check" and isinstance(result, dict) else None
     try:
         if getattr(args, "json", False):
             print(json.dumps(result, indent=2, sort_keys=False))
         elif isinstance(result, dict):
-            print("\n".join(_text(result)))
+            print("\n".join(_text({k: v for k, v in result.items() if not (problems is not None and k == "problems")})))
+            for problem in problems or ():
+                print(f"problem: {_one_line(problem)}")
         elif result is not None:
             print(result)
         sys.stdout.flush()
@@ -351,7 +356,7 @@ def main(argv=None):
         # the reader (e.g. `| head`) went away; not an error of ours
         with contextlib.suppress(OSError):
             os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-    return 0
+    return 1 if problems else 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -10,6 +10,7 @@ apart. No code runs from a config: it is parsed with :mod:`tomllib` only.
 from __future__ import annotations
 
 import dataclasses
+import math
 import tomllib
 import types
 import typing
@@ -20,10 +21,29 @@ from ._errors import TripletkitError
 
 __all__ = [
     "MiningConfig", "EvaluationConfig", "SweepConfig", "SweepRun", "HeadConfig", "DataConfig",
-    "ComputeConfig", "Config", "load_config", "section_from_dict", "override",
+    "ComputeConfig", "Config", "load_config", "section_from_dict", "override", "check_margin", "MAX_DISTANCE",
 ]
 
 REGIME_NAMES = ("easy", "semi-hard", "hard")
+
+
+#: The largest distance between two unit vectors: ||a - b||^2 <= 4 (squared), ||a - b|| <= 2 (euclidean).
+MAX_DISTANCE = {"squared": 4.0, "euclidean": 2.0}
+
+
+def check_margin(margin, distance, where="margin"):
+    """Refuse a margin that no pair of unit vectors can reach under ``distance``.
+
+    With margin alpha >= the largest distance D, d_an >= d_ap + alpha would need d_an >= D with
+    d_ap = 0: no triplet is ever easy and every one is active, so the margin cannot be what was
+    meant. ``where`` names the key or option in the message.
+    """
+    top = MAX_DISTANCE[distance]
+    if margin >= top:
+        raise TripletkitError(
+            f"{where} = {margin!r} cannot be reached with distance = {distance}: distances between unit vectors "
+            f"lie in [0, {top:g}], so the margin must lie in (0, {top:g})"
+        )
 
 
 def _opt(default, help, **checks):
@@ -35,7 +55,8 @@ def _opt(default, help, **checks):
 class MiningConfig:
     """Options of ``tripletkit mine`` (TOML section ``[mining]``)."""
 
-    margin: float = _opt(0.2, "margin alpha of the triplet loss (> 0)", low=0.0, open_low=True)
+    margin: float = _opt(0.2, "margin alpha of the triplet loss, in (0, 4) for squared and (0, 2) for euclidean "
+                         "distances", low=0.0, open_low=True)
     distance: str = _opt("squared", "distance on unit vectors: squared (||a-b||^2) or euclidean",
                          choices=("squared", "euclidean"))
     regimes: tuple[str, ...] = _opt(("semi-hard", "hard"), "regimes to mine: any of easy, semi-hard, hard",
@@ -190,7 +211,14 @@ def _coerce_scalar(value, tp, where):
             return value
     elif tp is float:
         if isinstance(value, (int, float)) and not isinstance(value, bool):
-            return float(value)
+            try:
+                number = float(value)
+            except OverflowError:  # an integer beyond float range
+                number = math.inf
+            if not math.isfinite(number):
+                # TOML spells these nan and inf; no option of ours has a meaning for them
+                raise TripletkitError(f"{where} must be a finite number, got {value!r}")
+            return number
     elif tp is str:
         if isinstance(value, str):
             return value
@@ -259,7 +287,10 @@ def section_from_dict(cls, values, where, base=None, section=None):
     for name, f in fields.items():
         if name not in kwargs and f.default is None and not _unwrap_optional(hints[name])[1]:
             raise TripletkitError(f"{where}: key {name!r} is required")
-    return cls(**kwargs)
+    out = cls(**kwargs)
+    if cls is MiningConfig:
+        check_margin(out.margin, out.distance, f"{where}.margin")
+    return out
 
 
 def load_config(path):
@@ -283,12 +314,25 @@ def load_config(path):
         )
     base = p.parent
     sections = {name: section_from_dict(_SECTIONS[name], raw[name], f"{p} [{name}]", base, name) for name in raw}
-    return Config(**sections, path=str(p))
+    config = Config(**sections, path=str(p))
+    # a sweep mines and trains with its margins under the [mining] distance
+    distance = config.mining.distance
+    for i, margin in enumerate(config.sweep.margins or ()):
+        check_margin(margin, distance, f"{p} [sweep].margins[{i}]")
+    for i, run in enumerate(config.sweep.runs):
+        check_margin(run.margin, distance, f"{p} [sweep].runs[{i}].margin")
+    return config
 
 
 def override(section, where="option", **values):
-    """A copy of ``section`` with ``values`` replaced (``None`` values are ignored), validated."""
-    hints = _hint(type(section))
+    """A copy of ``section`` with ``values`` replaced (``None`` values are ignored), validated.
+
+    The fields not replaced are validated too (a section built in Python, not read from a file,
+    has not been checked yet); an error names a replaced key as its option (``--margin``) and
+    another as the section's field (``MiningConfig.margin``).
+    """
+    cls = type(section)
+    hints = _hint(cls)
     fields = {f.name: f for f in dataclasses.fields(section)}
     changes = {}
     for key, value in values.items():
@@ -300,5 +344,21 @@ def override(section, where="option", **values):
             value = tuple(value)
         if isinstance(value, tuple) and typing.get_origin(_unwrap_optional(hints[key])[0]) is tuple:
             value = list(value)
-        changes[key] = _coerce(value, hints[key], fields[key].metadata, f"--{key.replace('_', '-')}", None)
-    return dataclasses.replace(section, **changes)
+        changes[key] = _coerce(value, hints[key], fields[key].metadata, _option(key), None)
+    for key, f in fields.items():
+        inner = _unwrap_optional(hints[key])[0]
+        nested = typing.get_origin(inner) is tuple and dataclasses.is_dataclass(typing.get_args(inner)[0])
+        if key in changes or nested or dataclasses.is_dataclass(inner):
+            continue
+        value = getattr(section, key)
+        _coerce(list(value) if isinstance(value, tuple) else value, hints[key], f.metadata,
+                f"{cls.__name__}.{key}", None)
+    out = dataclasses.replace(section, **changes)
+    if cls is MiningConfig:
+        check_margin(out.margin, out.distance, _option("margin") if "margin" in changes else
+                     "margin" if "distance" in changes else f"{cls.__name__}.margin")
+    return out
+
+
+def _option(key):
+    return f"--{key.replace('_', '-')}"

@@ -45,7 +45,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import atomic_path, check_not_input, check_output, jsonable
+from ._io import PARQUET_WRITE, atomic_path, check_not_input, check_output, jsonable
 
 __all__ = [
     "DEFAULT_SEED",
@@ -122,18 +122,18 @@ _GENERATOR_VERSION = 1
 _METADATA_KEY = b"tripletkit.demo"
 
 # Fixed writer options: the same table always gives the same bytes (no timestamps are written
-# by pyarrow's Parquet writer; the footer records the writer's version string).
+# by pyarrow's Parquet writer; the footer records the writer's version string). Page checksums
+# and compression come from the options of every file the package writes.
 _WRITE_OPTIONS = dict(
+    PARQUET_WRITE,
     row_group_size=1 << 16,
     version="2.6",
     data_page_version="1.0",
-    compression="zstd",
     compression_level=3,
     use_dictionary=["label", "group", "site", "season"],
     write_statistics=True,
     store_schema=True,
     write_page_index=False,
-    write_page_checksum=False,
 )
 
 

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_not_input, check_output
+from ._io import atomic_path, check_not_input, check_output, read_parquet
 from .config import EvaluationConfig
 from .table import as_table, source_path
 
@@ -73,16 +73,11 @@ def read_pair_list(path, table):
         itself, or a ``same`` value that disagrees with the labels (naming the first such pair).
     """
     import pyarrow as pa
-    import pyarrow.parquet as pq
 
     p = Path(path)
     if not p.is_file():
         raise TripletkitError(f"pair list {str(p)!r} does not exist; check the path given as pairs")
-    try:
-        pairs = pq.read_table(str(p))
-    except (pa.ArrowException, OSError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise TripletkitError(f"cannot read pair list {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    pairs = read_parquet(p, "pair list")
     missing = [c for c in ("left", "right") if c not in pairs.column_names]
     if missing:
         raise TripletkitError(

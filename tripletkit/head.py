@@ -33,6 +33,7 @@ References
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import sys
 import time
@@ -43,11 +44,11 @@ import numpy as np
 
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path
-from ._validate import as_embeddings
-from .config import HeadConfig, MiningConfig
+from ._validate import as_embeddings, row_norms
+from .config import HeadConfig, MiningConfig, check_margin
 from .loss import REGIMES, triplet_loss, triplet_loss_grad
 
-__all__ = ["ProjectionHead", "fit_head"]
+__all__ = ["ProjectionHead", "fit_head", "HeadDiverged"]
 
 #: Written into every saved head; :meth:`ProjectionHead.load` refuses other formats.
 _FORMAT = "tripletkit-projection-head-1"
@@ -92,6 +93,24 @@ def _matmul_tn(A, G):
     for s in range(0, A.shape[0], r):
         out += A[s:s + r].T @ G[s:s + r]
     return out
+
+
+class HeadDiverged(TripletkitError):
+    """The head's numbers broke down: weights or outputs overflowed, or rows map to the zero vector.
+
+    ``what`` says what happened (for :func:`fit_head` to say at which margin and epoch);
+    ``overflow`` is False for zero outputs, which a fresh head can also produce.
+    """
+
+    def __init__(self, what, message=None, overflow=True):
+        super().__init__(message or f"{what}: the fit diverged; lower [head] learning_rate")
+        self.what, self.overflow = what, overflow
+
+
+def _finite(arrays, what):
+    """Raise :class:`HeadDiverged` unless every array holds finite numbers only."""
+    if not all(np.isfinite(a).all() for a in arrays):
+        raise HeadDiverged(f"{what} overflowed to Inf/NaN")
 
 
 def _unit_rows(X, name):
@@ -218,13 +237,20 @@ class ProjectionHead:
         return (S - self.params["shift"]) / self.params["scale"]
 
     def _forward(self, S):
-        """Raw outputs z (before normalisation) of standardised rows, and what backward needs."""
+        """Raw outputs z (before normalisation) of standardised rows, and what backward needs.
+
+        Raises :class:`HeadDiverged` when an output is not finite (weights grown beyond float64).
+        """
         p = self.params
-        if self.hidden == 0:
-            return _matmul(S, p["weight"]), (S,)
-        pre = _matmul(S, p["weight_1"]) + p["bias_1"]
-        H = np.maximum(pre, 0.0)
-        return _matmul(H, p["weight_2"]) + p["bias_2"], (S, pre, H)
+        with np.errstate(over="ignore", invalid="ignore"):
+            if self.hidden == 0:
+                Z, cache = _matmul(S, p["weight"]), (S,)
+            else:
+                pre = _matmul(S, p["weight_1"]) + p["bias_1"]
+                H = np.maximum(pre, 0.0)
+                Z, cache = _matmul(H, p["weight_2"]) + p["bias_2"], (S, pre, H)
+        _finite([Z], "the projection head's raw outputs")
+        return Z, cache
 
     def _backward(self, cache, dZ):
         """Gradients of the trained parameters from dL/dz (float64 (n, dim))."""
@@ -257,13 +283,15 @@ class ProjectionHead:
 
     @staticmethod
     def _unit_outputs(Z):
-        norms = np.sqrt(np.einsum("ij,ij->i", Z, Z))
+        norms = row_norms(Z)  # raw outputs may be huge: no overflow in the sum of squares
         zero = ~(norms > 0)
         if zero.any():
-            raise TripletkitError(
-                f"the head maps {int(zero.sum())} input rows to the zero vector (first row positions: "
-                f"{np.flatnonzero(zero)[:5].tolist()}), which has no direction; refit with another seed"
-            )
+            rows = np.flatnonzero(zero)[:5].tolist()
+            raise HeadDiverged(
+                f"it maps {int(zero.sum())} rows to the zero vector (first row positions: {rows}; every hidden unit "
+                "is off for them)",
+                f"the head maps {int(zero.sum())} input rows to the zero vector (first row positions: {rows}), which "
+                "has no direction; refit with another seed", overflow=False)
         return np.ascontiguousarray(Z / norms[:, None], dtype=np.float32)
 
     def loss_and_grad(self, S, anchor, positive, negative, margin, distance="squared"):
@@ -298,7 +326,10 @@ class ProjectionHead:
                                                 margin=margin, distance=distance, reduction="mean")
         dZ = np.zeros_like(Z)
         np.add.at(dZ, inv, np.concatenate([g_a, g_p, g_n]))
-        return loss, self._backward(cache, dZ)
+        with np.errstate(over="ignore", invalid="ignore"):
+            grads = self._backward(cache, dZ)
+        _finite(grads.values(), "the projection head's gradients")
+        return loss, grads
 
     # -- files -------------------------------------------------------------------------------
     def save(self, path, *, force=False):
@@ -406,6 +437,25 @@ def _epoch_line(margin, rec, epochs):
             f"(mining {s['mining']:.2f} s, gradient {s['gradient']:.2f} s, update {s['update']:.2f} s)")
 
 
+@contextlib.contextmanager
+def _diverged_at(margin, epoch, head_config):
+    """Turn :class:`HeadDiverged` into one line naming the margin, the epoch and what to change.
+
+    Zero outputs before the first update come from the initialisation (its message stands); after
+    an update they, like an overflow, mean that the steps were too large.
+    """
+    try:
+        yield
+    except HeadDiverged as exc:
+        if not exc.overflow and epoch == 1:
+            raise
+        lr = head_config.learning_rate
+        raise TripletkitError(
+            f"the projection head diverged at margin {margin:g} in epoch {epoch} of {head_config.epochs}: {exc.what}; "
+            f"lower [head] learning_rate (now {lr:g}, try {lr / 100:g})"
+        ) from None
+
+
 def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet=False, progress=None):
     """Fit a :class:`ProjectionHead` on frozen features with the triplet loss, re-mining every epoch.
 
@@ -457,6 +507,7 @@ def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet
             or not np.isfinite(margin) or margin <= 0:
         raise TripletkitError(f"margin must be a finite number > 0, got {margin!r}")
     margin = float(margin)
+    check_margin(margin, mining_config.distance, "margin")
     train = as_table(train_table)
     if train.n_identities < 2:
         raise TripletkitError("the training table has fewer than 2 identities; a triplet needs a negative")
@@ -471,50 +522,53 @@ def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet
     batch = head_config.batch_triplets
     history = []
     for epoch in range(1, head_config.epochs + 1):
-        cfg = dataclasses.replace(mining_config, margin=margin, seed=mining_config.seed + epoch)
-        t0 = time.perf_counter()
-        summary = _mine_epoch(train, head, S, cfg, quiet)
-        t_mine = time.perf_counter() - t0
-        trip = summary.triplets
-        a = np.asarray(trip["anchor"], dtype=np.int64)
-        p = np.asarray(trip["positive"], dtype=np.int64)
-        n = np.asarray(trip["negative"], dtype=np.int64)
-        order = rng.permutation(a.shape[0])
-        t_grad = t_upd = 0.0
-        total, steps = 0.0, 0
-        for start in range(0, order.shape[0], batch):
-            sel = order[start:start + batch]
+        with _diverged_at(margin, epoch, head_config):
+            cfg = dataclasses.replace(mining_config, margin=margin, seed=mining_config.seed + epoch)
             t0 = time.perf_counter()
-            loss, grads = head.loss_and_grad(S, a[sel], p[sel], n[sel], margin, cfg.distance)
-            t1 = time.perf_counter()
-            opt.step(head.params, grads)
-            t2 = time.perf_counter()
-            t_grad += t1 - t0
-            t_upd += t2 - t1
-            total += loss * sel.shape[0]
-            steps += 1
-        loss_after = None
-        if a.shape[0]:
-            # The same triplets, scored once more after the epoch's updates.
-            Z = head._forward(S)[0]
-            loss_after = float(np.mean(triplet_loss(Z[a], Z[p], Z[n], margin=margin, distance=cfg.distance)))
-        info = summary.to_dict()
-        regimes = {r: int(info.get("regimes", {}).get(r, 0)) for r in REGIMES}
-        rec = {
-            "epoch": epoch,
-            "loss": total / a.shape[0] if a.shape[0] else None,
-            "loss_after": loss_after,
-            "triplets": int(a.shape[0]),
-            "steps": steps,
-            "active_fraction": None if info.get("active_fraction") is None else float(info["active_fraction"]),
-            "regimes": regimes,
-            "seconds": {"mining": t_mine, "gradient": t_grad, "update": t_upd},
-        }
-        history.append(rec)
-        if progress is not None:
-            progress(rec)
-        elif not quiet:
-            print(_epoch_line(margin, rec, head_config.epochs), file=sys.stderr, flush=True)
+            summary = _mine_epoch(train, head, S, cfg, quiet)
+            t_mine = time.perf_counter() - t0
+            trip = summary.triplets
+            a = np.asarray(trip["anchor"], dtype=np.int64)
+            p = np.asarray(trip["positive"], dtype=np.int64)
+            n = np.asarray(trip["negative"], dtype=np.int64)
+            order = rng.permutation(a.shape[0])
+            t_grad = t_upd = 0.0
+            total, steps = 0.0, 0
+            for start in range(0, order.shape[0], batch):
+                sel = order[start:start + batch]
+                t0 = time.perf_counter()
+                loss, grads = head.loss_and_grad(S, a[sel], p[sel], n[sel], margin, cfg.distance)
+                t1 = time.perf_counter()
+                with np.errstate(over="ignore", invalid="ignore"):
+                    opt.step(head.params, grads)
+                _finite([head.params[k] for k in names], "the projection head's weights")
+                t2 = time.perf_counter()
+                t_grad += t1 - t0
+                t_upd += t2 - t1
+                total += loss * sel.shape[0]
+                steps += 1
+            loss_after = None
+            if a.shape[0]:
+                # The same triplets, scored once more after the epoch's updates.
+                Z = head._forward(S)[0]
+                loss_after = float(np.mean(triplet_loss(Z[a], Z[p], Z[n], margin=margin, distance=cfg.distance)))
+            info = summary.to_dict()
+            regimes = {r: int(info.get("regimes", {}).get(r, 0)) for r in REGIMES}
+            rec = {
+                "epoch": epoch,
+                "loss": total / a.shape[0] if a.shape[0] else None,
+                "loss_after": loss_after,
+                "triplets": int(a.shape[0]),
+                "steps": steps,
+                "active_fraction": None if info.get("active_fraction") is None else float(info["active_fraction"]),
+                "regimes": regimes,
+                "seconds": {"mining": t_mine, "gradient": t_grad, "update": t_upd},
+            }
+            history.append(rec)
+            if progress is not None:
+                progress(rec)
+            elif not quiet:
+                print(_epoch_line(margin, rec, head_config.epochs), file=sys.stderr, flush=True)
     empty = [rec["epoch"] for rec in history if rec["triplets"] == 0]
     if empty:
         warnings.warn(

@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._errors import TripletkitError
-from ._validate import as_codes, as_embeddings, check_same_length
+from ._validate import as_codes, as_embeddings, check_same_length, row_norms
 
 __all__ = [
     "REGIMES",
@@ -122,7 +122,7 @@ def _raw_rows(x, name):
     """
     as_embeddings(x, name, normalise=True)
     x64 = np.asarray(x, dtype=np.float64)
-    norms = np.sqrt(np.einsum("ij,ij->i", x64, x64))
+    norms = row_norms(x64)  # no overflow for rows of huge finite values
     return x64 / norms[:, None], norms
 
 

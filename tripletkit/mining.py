@@ -100,7 +100,7 @@ import pyarrow.parquet as pq
 from tqdm import tqdm
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_output
+from ._io import PARQUET_WRITE, atomic_paths, check_output
 from .config import MiningConfig, override
 from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
                     faiss_threads, query_block_rows, resolve_kind)
@@ -1100,7 +1100,7 @@ class _TripletWriter:
         self.id_type = _arrow_type(table.ids)
         self.label_type = _arrow_type(table.label_values)
         self.schema = triplet_schema(self.id_type, self.label_type, metadata)
-        self.writer = pq.ParquetWriter(str(path), self.schema, compression="zstd") if path else None
+        self.writer = pq.ParquetWriter(str(path), self.schema, **PARQUET_WRITE) if path else None
         self.buffer, self.buffered = [], 0
 
     def add(self, arrays):
@@ -1164,7 +1164,7 @@ def _write_duplicates(path, table, i, j, c, metadata):
     cols = [_arrow(table.ids[i], id_type), _arrow(table.ids[j], id_type),
             _arrow(table.label_values[lab[i]], label_type), _arrow(table.label_values[lab[j]], label_type),
             pa.array(c, type=pa.float64())]
-    pq.write_table(pa.Table.from_arrays(cols, schema=schema), str(path), compression="zstd")
+    pq.write_table(pa.Table.from_arrays(cols, schema=schema), str(path), **PARQUET_WRITE)
 
 
 def _metadata(cfg, table, index, recall, extra=None):
@@ -1267,11 +1267,9 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
             raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
     table = as_table(source, **(table_options or {}))
     _guard_memory(table, cfg, return_triplets)
-    with contextlib.ExitStack() as stack:
-        tmp_out = tmp_dup = None
-        if out is not None:
-            tmp_out = stack.enter_context(atomic_path(out, force=force))
-            tmp_dup = stack.enter_context(atomic_path(dup_out, force=force))
+    # The triplet table and its duplicate report are published together or not at all.
+    with atomic_paths([] if out is None else [out, dup_out], force=force) as tmps:
+        tmp_out, tmp_dup = tmps or (None, None)
         summary = _mine_table(table, cfg, tmp_out, tmp_dup, quiet=quiet, return_triplets=return_triplets)
     summary.seconds = time.perf_counter() - t0
     if out is not None:

@@ -582,7 +582,7 @@ def _run_folder(margin):
 
 
 def _fit_run(plan, run, cfg, i, total, quiet):
-    from .head import _epoch_line, fit_head
+    from .head import HeadDiverged, _epoch_line, fit_head
 
     def progress(rec):
         _say(quiet, f"run {i}/{total} " + _epoch_line(run.margin, rec, cfg.head.epochs).replace("[head] ", ""))
@@ -590,8 +590,14 @@ def _fit_run(plan, run, cfg, i, total, quiet):
     t0 = time.perf_counter()
     head, history = fit_head(plan.train, run.margin, cfg.head, cfg.mining, quiet=True, progress=progress)
     fit_seconds = time.perf_counter() - t0
-    held = plan.heldout.with_embeddings(head.transform(plan.heldout.embeddings))
-    train_out = plan.train.with_embeddings(head.transform(plan.train.embeddings))
+    try:
+        held = plan.heldout.with_embeddings(head.transform(plan.heldout.embeddings))
+        train_out = plan.train.with_embeddings(head.transform(plan.train.embeddings))
+    except HeadDiverged as exc:
+        raise TripletkitError(
+            f"the projection head fitted at margin {run.margin:g} diverged on the held-out or training rows: "
+            f"{exc.what}; lower [head] learning_rate (now {cfg.head.learning_rate:g})"
+        ) from None
     t1 = time.perf_counter()
     mining = _mining_stats(train_out, run.margin, cfg.mining)
     return head, history, held, mining, fit_seconds, time.perf_counter() - t1

@@ -14,13 +14,14 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import atomic_path
+from ._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
+from ._validate import float32_rows
 
-__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs"]
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
+           "pair_problems", "id_array"]
 
 #: Norms within this distance of 1 count as "already unit length".
 UNIT_NORM_TOLERANCE = 1e-3
@@ -36,6 +37,14 @@ def _first(ids, mask, k=5):
 
 def _py(v):
     return v.item() if isinstance(v, np.generic) else v
+
+
+class _EveryRowInvalid(TripletkitError):
+    """Every row has NaN/Inf or zero norm (raised with ``drop_invalid``); carries what check reports."""
+
+    def __init__(self, message, rows, dim, identities):
+        super().__init__(message)
+        self.rows, self.dim, self.identities = rows, dim, identities
 
 
 @dataclass(frozen=True, eq=False)
@@ -58,6 +67,8 @@ class EmbeddingTable:
         Whether every input row already had unit length (within 1e-3).
     dropped : int
         Rows dropped as invalid (NaN/Inf/zero norm) when ``drop_invalid`` was set.
+    dropped_ids : tuple
+        The first (at most 5) ids of the dropped rows.
     source : str or None
         Where the table was read from.
     metadata : pyarrow.Table or None
@@ -71,6 +82,7 @@ class EmbeddingTable:
     groups: np.ndarray | None = None
     unit_norm: bool = True
     dropped: int = 0
+    dropped_ids: tuple = ()
     source: str | None = None
     metadata: pa.Table | None = None
     _fingerprint: list = field(default_factory=list, repr=False)
@@ -114,13 +126,13 @@ class EmbeddingTable:
             dup = _first_duplicate(ids)
             raise TripletkitError(f"id column {id_column!r}{where} has duplicate ids (first: {dup!r}); ids must be unique")
         labels = _key_column(table.column(label_column), label_column, "label", where)
-        emb = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
+        emb, rescaled = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
         groups = None
         if group_column and group_column in names:
             groups = _group_column(table.column(group_column), group_column, where)
         others = [c for c in names if c not in (id_column, label_column, embedding_column, group_column)]
         metadata = table.select(others) if others else None
-        return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where)
+        return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where, rescaled)
 
     @classmethod
     def from_arrays(cls, ids, labels, embeddings, groups=None, *, drop_invalid=False):
@@ -134,7 +146,7 @@ class EmbeddingTable:
             raise TripletkitError("embeddings have dimension 0; every row needs at least one value")
         if not np.issubdtype(emb.dtype, np.number):
             raise TripletkitError(f"embeddings must hold real numbers, got dtype {emb.dtype}")
-        emb = np.ascontiguousarray(emb, dtype=np.float32)
+        emb, rescaled = _float32(emb)
         ids = np.asarray(ids)
         labels = np.asarray(labels)
         for name, arr in (("ids", ids), ("labels", labels)):
@@ -161,10 +173,10 @@ class EmbeddingTable:
                 raise TripletkitError(f"groups must have one entry per row ({ids.shape[0]}), got shape {groups.shape}")
             if groups.dtype == object and any(v is None for v in groups):
                 raise TripletkitError("groups contain null values; every row needs a group (e.g. 'unknown')")
-        return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "")
+        return cls._build(ids, labels, emb, groups, drop_invalid, None, None, "", rescaled)
 
     @classmethod
-    def _build(cls, ids, labels, emb, groups, drop_invalid, source, metadata, where):
+    def _build(cls, ids, labels, emb, groups, drop_invalid, source, metadata, where, rescaled=0):
         n = emb.shape[0]
         bad_finite = np.zeros(n, dtype=bool)
         sq = np.empty(n, dtype=np.float64)
@@ -175,7 +187,7 @@ class EmbeddingTable:
                 sq[s:s + _ROW_BLOCK] = np.einsum("ij,ij->i", blk, blk, dtype=np.float64)
         bad_zero = (~bad_finite) & (sq == 0)
         bad = bad_finite | bad_zero
-        dropped = 0
+        dropped, dropped_ids = 0, ()
         if bad.any():
             if not drop_invalid:
                 parts = []
@@ -188,20 +200,24 @@ class EmbeddingTable:
                 )
             keep = ~bad
             dropped = int(bad.sum())
+            dropped_ids = tuple(_py(ids[p]) for p in np.flatnonzero(bad)[:5])
             if dropped == n:
-                raise TripletkitError(f"every row of the table{where} is invalid (NaN/Inf or zero norm)")
+                raise _EveryRowInvalid(f"every row of the table{where} is invalid (NaN/Inf or zero norm)",
+                                       rows=n, dim=int(emb.shape[1]), identities=len(np.unique(labels)))
             ids, labels, emb, sq = ids[keep], labels[keep], emb[keep], sq[keep]
             groups = groups[keep] if groups is not None else None
             metadata = metadata.filter(pa.array(keep)) if metadata is not None else None
         norms = np.sqrt(sq)
-        unit = bool(np.all(np.abs(norms - 1.0) <= UNIT_NORM_TOLERANCE))
+        # a rescaled row (float64 values outside float32's range) was far from unit length
+        unit = not rescaled and bool(np.all(np.abs(norms - 1.0) <= UNIT_NORM_TOLERANCE))
         out = np.empty(emb.shape, dtype=np.float32)
         for s in range(0, emb.shape[0], _ROW_BLOCK):
             np.divide(emb[s:s + _ROW_BLOCK], norms[s:s + _ROW_BLOCK, None], out=out[s:s + _ROW_BLOCK],
                       casting="unsafe")
         values, codes = np.unique(labels, return_inverse=True)
         return cls(ids=ids, labels=codes.astype(np.int64).reshape(-1), label_values=values, embeddings=out,
-                   groups=groups, unit_norm=unit, dropped=dropped, source=source, metadata=metadata)
+                   groups=groups, unit_norm=unit, dropped=dropped, dropped_ids=dropped_ids, source=source,
+                   metadata=metadata)
 
     # -- properties ---------------------------------------------------------------------------
     @property
@@ -239,24 +255,29 @@ class EmbeddingTable:
         return self.label_values[self.labels if rows is None else self.labels[rows]]
 
     def positions(self, ids, what="ids"):
-        """Row positions of ``ids``; an unknown id is an error that names it."""
-        ids = np.asarray(ids)
-        if self.ids.dtype == object:
-            lookup = pa.array(self.ids.tolist(), type=pa.string())
-            query = pa.array([str(v) for v in ids.tolist()], type=pa.string())
-        else:
-            if ids.dtype == object or ids.dtype.kind in "USf":
-                try:
-                    ids = ids.astype(np.int64)
-                except (TypeError, ValueError):
-                    raise TripletkitError(f"{what} are not integers but the table's ids are integers") from None
-            lookup = pa.array(self.ids)
-            query = pa.array(ids.astype(np.int64))
+        """Row positions of ``ids`` (int64 or strings, the kind of the table's ids).
+
+        Ids of another kind (floats, integers for a table of string ids and the reverse) and ids
+        that are not in the table are errors naming the count and the first few.
+        """
+        query = id_array(ids, what)
+        if len(query) == 0:
+            return np.zeros(0, dtype=np.int64)
+        table_strings = self.ids.dtype == object
+        if pa.types.is_string(query.type) != table_strings:
+            kinds = ("strings", "integers") if table_strings else ("integers", "strings")
+            raise TripletkitError(
+                f"{what} are {kinds[1]} but the ids of the embedding table{_of(self.source)} are {kinds[0]}; "
+                "use the ids of the table (the same kind, int64 or string)"
+            )
+        lookup = pa.array(self.ids.tolist(), type=pa.string()) if table_strings else pa.array(self.ids)
         pos = pc.index_in(query, value_set=lookup)
         if pos.null_count:
-            first = query[int(np.flatnonzero(pos.is_null().to_numpy(zero_copy_only=False))[0])].as_py()
+            missing = pc.unique(query.filter(pos.is_null()))
+            first = ", ".join(repr(v) for v in missing.slice(0, 5).to_pylist())
             raise TripletkitError(
-                f"{pos.null_count} {what} are not in the embedding table (first: {first!r})"
+                f"{pos.null_count} {what} are not in the embedding table{_of(self.source)} (first: {first}); use "
+                "the table the ids come from"
             )
         return pos.to_numpy(zero_copy_only=False).astype(np.int64)
 
@@ -268,7 +289,7 @@ class EmbeddingTable:
             ids=self.ids[rows], labels=codes.astype(np.int64).reshape(-1), label_values=self.label_values[values],
             embeddings=np.ascontiguousarray(self.embeddings[rows]),
             groups=None if self.groups is None else self.groups[rows], unit_norm=self.unit_norm,
-            dropped=self.dropped, source=self.source,
+            dropped=self.dropped, dropped_ids=self.dropped_ids, source=self.source,
             metadata=None if self.metadata is None else self.metadata.take(pa.array(rows)),
         )
 
@@ -281,40 +302,76 @@ class EmbeddingTable:
         return np.bincount(self.labels, minlength=self.n_identities).astype(np.int64)
 
 
+def _of(source):
+    return f" {str(source)!r}" if source else ""
+
+
+def id_array(ids, what="ids"):
+    """``ids`` as an Arrow array of int64 or strings, the id kinds of the table contract.
+
+    Parameters
+    ----------
+    ids : array-like of shape (n,), pyarrow.Array or ChunkedArray
+    what : str
+        What the ids are, for messages (e.g. ``"anchor ids of triplet table 't.parquet'"``).
+
+    Floats (0.7 is no id, and 1.0 would silently become 1), booleans, nulls and mixed kinds are
+    errors.
+    """
+    if isinstance(ids, (pa.Array, pa.ChunkedArray)):
+        arr = ids
+    else:
+        values = np.asarray(ids)
+        if values.ndim != 1:
+            raise TripletkitError(f"{what} must be a 1-D column of ids, got shape {values.shape}")
+        if values.size == 0:
+            return pa.array([], type=pa.string() if values.dtype.kind in "OUS" else pa.int64())
+        try:
+            arr = pa.array(values.tolist() if values.dtype == object else values)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            raise TripletkitError(f"{what} mix integers and strings; ids are all int64 or all strings") from None
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    t = arr.type
+    if pa.types.is_dictionary(t):
+        arr = arr.cast(t.value_type)
+        t = arr.type
+    if pa.types.is_null(t) or arr.null_count:
+        first = int(np.flatnonzero(arr.is_null().to_numpy(zero_copy_only=False))[0])
+        raise TripletkitError(f"{what} have {arr.null_count} null values (first at row {first}); every row needs an id")
+    if pa.types.is_integer(t):
+        try:
+            return arr.cast(pa.int64())
+        except pa.ArrowInvalid:
+            raise TripletkitError(f"{what} have {t} values above {np.iinfo(np.int64).max}; ids are int64 or "
+                                  "strings") from None
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return arr.cast(pa.string())
+    raise TripletkitError(f"{what} have type {t}; ids are int64 or strings (as in the embedding table)")
+
+
 # -- reading ----------------------------------------------------------------------------------
 def _read_arrow(path):
     p = Path(path)
     if not p.exists():
         raise TripletkitError(f"embedding table {str(p)!r} does not exist; check the path")
-    try:
-        if p.is_dir():
-            files = sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
-            if not files:
-                raise TripletkitError(f"folder {str(p)!r} holds no .parquet files")
-            schemas = {}
-            for f in files:
-                try:
-                    schema = pq.read_schema(f)
-                except (pa.ArrowException, OSError) as exc:
-                    msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-                    raise TripletkitError(f"cannot read part {f!r} of folder {str(p)!r} as Parquet ({msg}); "
-                                          "is the file complete?") from None
-                schemas.setdefault(schema.remove_metadata(), f)
-            if len(schemas) > 1:
-                a, b = list(schemas.values())[:2]
-                raise TripletkitError(
-                    f"folder {str(p)!r} mixes Parquet files with different schemas "
-                    f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
-                )
-            table = ds.dataset(files, format="parquet").to_table()
-        else:
-            table = pq.read_table(str(p))
-    except TripletkitError:
-        raise
-    except (pa.ArrowException, OSError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
-    return table
+    if not p.is_dir():
+        return read_parquet(p, "embedding table")
+    files = parquet_files(p)
+    if not files:
+        raise TripletkitError(f"folder {str(p)!r} holds no .parquet files (names starting with '.' or '_' are "
+                              "skipped, as by pyarrow's dataset discovery)")
+    schemas = {}
+    for f in files:
+        schema = read_parquet_schema(f, "part", f" of folder {str(p)!r}")
+        schemas.setdefault(schema.remove_metadata(), f)
+    if len(schemas) > 1:
+        a, b = list(schemas.values())[:2]
+        raise TripletkitError(
+            f"folder {str(p)!r} mixes Parquet files with different schemas "
+            f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
+        )
+    return read_parquet_files(files, "part", f" of folder {str(p)!r}")
 
 
 def _key_column(col, name, role, where):
@@ -413,10 +470,14 @@ def _embedding_matrix(col, name, ids, where):
         raise TripletkitError(
             f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"
         )
-    flat = values.to_numpy(zero_copy_only=False)
-    if flat.dtype != np.float32:
-        flat = flat.astype(np.float32)
-    return flat.reshape(n, d)
+    return _float32(values.to_numpy(zero_copy_only=False).reshape(n, d))
+
+
+def _float32(matrix):
+    """``(float32 matrix, rows rescaled)``: float64 rows outside float32's range keep their direction."""
+    if matrix.dtype.kind == "f" and matrix.dtype.itemsize > 4:
+        return float32_rows(matrix)
+    return np.ascontiguousarray(matrix, dtype=np.float32), 0
 
 
 def read_table(path, **options):
@@ -446,6 +507,27 @@ def as_table(source, **options):
     )
 
 
+def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
+    """The reasons (one line each) why ``table`` has no genuine or no impostor pairs at all.
+
+    Parameters are those of :func:`require_pairs`; an empty list means the pairs are there.
+    """
+    where = f" {table.source!r}" if table.source else ""
+    problems = []
+    if impostor and table.n_identities < 2:
+        only = _py(table.label_values[0])
+        problems.append(
+            f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
+            f"at least 2 identities ({hint})"
+        )
+    if genuine and not (table.identity_sizes() >= 2).any():
+        problems.append(
+            f"every identity of table{where} has one row, so there are no genuine pairs; {what} needs identities "
+            f"with at least 2 rows ({hint})"
+        )
+    return problems
+
+
 def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
     """Raise when a table has no genuine pairs or no impostor pairs at all.
 
@@ -465,18 +547,9 @@ def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-
     hint : str
         What to check, appended to the message in parentheses.
     """
-    where = f" {table.source!r}" if table.source else ""
-    if impostor and table.n_identities < 2:
-        only = _py(table.label_values[0])
-        raise TripletkitError(
-            f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
-            f"at least 2 identities ({hint})"
-        )
-    if genuine and not (table.identity_sizes() >= 2).any():
-        raise TripletkitError(
-            f"every identity of table{where} has one row, so there are no genuine pairs; {what} needs identities "
-            f"with at least 2 rows ({hint})"
-        )
+    problems = pair_problems(table, what, genuine=genuine, impostor=impostor, hint=hint)
+    if problems:
+        raise TripletkitError(problems[0])
 
 
 # -- writing ----------------------------------------------------------------------------------
@@ -506,28 +579,61 @@ def write_table(path, ids, labels, embeddings, groups=None, *, extra=None, metad
     """Write an embedding table to Parquet atomically; refuses to overwrite unless ``force``."""
     table = to_arrow(ids, labels, embeddings, groups, extra, metadata)
     with atomic_path(path, force=force) as tmp:
-        pq.write_table(table, str(tmp), compression="zstd")
+        pq.write_table(table, str(tmp), **PARQUET_WRITE)
     return Path(path)
 
 
 # -- the check command ------------------------------------------------------------------------
 def check(source, **options):
-    """Describe an embedding table: size, identities, singletons, invalid rows, unit norm.
+    """Describe an embedding table and list the problems that would make ``mine`` or ``score`` refuse it.
 
     Invalid rows (NaN/Inf/zero norm) are counted, not fatal, so that the check can report them.
+
+    Parameters
+    ----------
+    source : str, Path, EmbeddingTable or (ids, labels, embeddings)
+    **options
+        Column names and ``drop_invalid`` as for :meth:`EmbeddingTable.read`; with
+        ``drop_invalid`` the invalid rows are not a problem (mine and score would drop them).
 
     Returns
     -------
     dict
-        Keys ``rows``, ``dim``, ``identities``, ``samples_per_identity`` (min/median/max),
-        ``singletons``, ``invalid_rows``, ``unit_norm``, ``groups`` (count or None).
+        Keys ``rows`` (rows in the input, valid or not), ``dim``, ``identities``,
+        ``samples_per_identity`` (min/median/max), ``singletons``, ``invalid_rows`` (rows with
+        NaN/Inf or zero norm), ``unit_norm``, ``groups`` (count or None), all but ``rows`` and
+        ``invalid_rows`` counted on the valid rows, and ``problems``: one line per finding that
+        would make ``tripletkit mine`` or ``tripletkit score`` refuse the table (invalid rows
+        without ``drop_invalid``, no genuine pairs, a single identity); empty when the table is
+        usable. The command prints each problem on its own line and exits with code 1.
+
+    Raises
+    ------
+    TripletkitError
+        When the input cannot be read as an embedding table at all (a missing or broken file, a
+        missing column, wrong column types, null or duplicate ids, no rows).
     """
     options = dict(options)
+    drop_requested = bool(options.get("drop_invalid", False))
     options["drop_invalid"] = True
-    table = as_table(source, **options)
+    try:
+        table = as_table(source, **options)
+    except _EveryRowInvalid as exc:
+        return {
+            "rows": exc.rows, "dim": exc.dim, "identities": exc.identities, "samples_per_identity": None,
+            "singletons": None, "invalid_rows": exc.rows, "unit_norm": None, "groups": None,
+            "problems": [f"{exc}: there is nothing to mine or score"],
+        }
     sizes = table.identity_sizes()
+    problems = []
+    if table.dropped and not drop_requested:
+        where = f" {table.source!r}" if table.source else ""
+        first = ", ".join(repr(v) for v in table.dropped_ids)
+        problems.append(f"table{where} has {table.dropped} rows with NaN/Inf or zero norm (first ids: {first}); mine "
+                        "and score refuse them: fix them or pass --drop-invalid")
+    problems += pair_problems(table, "mining or scoring")
     return {
-        "rows": table.n,
+        "rows": table.n + table.dropped,
         "dim": table.dim,
         "identities": table.n_identities,
         "samples_per_identity": {"min": int(sizes.min()), "median": float(np.median(sizes)), "max": int(sizes.max())},
@@ -535,4 +641,5 @@ def check(source, **options):
         "invalid_rows": int(table.dropped),
         "unit_norm": bool(table.unit_norm),
         "groups": None if table.groups is None else int(len(set(table.groups.tolist()))),
+        "problems": problems,
     }

@@ -9,11 +9,11 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from .table import as_table
+from ._io import read_parquet, read_parquet_schema
+from .config import MAX_DISTANCE, check_margin
+from .table import as_table, id_array
 
 __all__ = ["read_triplets", "triplet_loss_report"]
 
@@ -31,25 +31,22 @@ def read_triplets(path):
     p = Path(path)
     if not p.is_file():
         raise TripletkitError(f"triplet table {str(p)!r} does not exist; check the path")
-    try:
-        schema = pq.read_schema(str(p))
-        missing = [c for c in _ID_COLUMNS if c not in schema.names]
-        if missing:
-            raise TripletkitError(
-                f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
-            )
-        table = pq.read_table(str(p), columns=list(_ID_COLUMNS))
-    except TripletkitError:
-        raise
-    except (pa.ArrowException, OSError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise TripletkitError(f"cannot read {str(p)!r} as Parquet ({msg}); is the file complete?") from None
+    schema = read_parquet_schema(p, "triplet table")
+    missing = [c for c in _ID_COLUMNS if c not in schema.names]
+    if missing:
+        raise TripletkitError(
+            f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
+        )
+    table = read_parquet(p, "triplet table", columns=list(_ID_COLUMNS))
     out = {}
+    kinds = set()
     for col in _ID_COLUMNS:
-        c = table.column(col)
-        if c.null_count:
-            raise TripletkitError(f"triplet table {str(p)!r} column {col!r} has {c.null_count} null ids")
-        out[col] = c.to_numpy(zero_copy_only=False)
+        ids = id_array(table.column(col), f"{col} ids of triplet table {str(p)!r} (column {col!r})")
+        kinds.add(ids.type)
+        out[col] = ids.to_numpy(zero_copy_only=False)
+    if len(kinds) > 1:
+        raise TripletkitError(f"triplet table {str(p)!r} mixes integer and string ids across anchor, positive and "
+                              "negative; all three hold ids of one embedding table")
     return out
 
 
@@ -72,6 +69,8 @@ def triplet_loss_report(triplets, table, *, margin=0.2, distance="squared", soft
     """
     from .loss import score_triplets
 
+    if not soft and distance in MAX_DISTANCE and isinstance(margin, (int, float)):
+        check_margin(margin, distance, "margin")
     trip = read_triplets(triplets) if isinstance(triplets, (str, Path)) else triplets
     emb = as_table(table, **(table_options or {}))
     if len(trip["anchor"]) == 0:
