@@ -8,7 +8,13 @@ is imported and Dask is not needed (it is the optional extra ``tripletkit[dask]`
 
 Every worker, and the client, must see the input table and the output folder under the same
 path (a shared filesystem); paths are made absolute on the client. The client reads nothing but
-the file names: the workers read the Parquet dataset.
+the file names (and, for ``index = auto``, the row counts in the Parquet footers): the workers
+read the Parquet dataset.
+
+Options a cluster run cannot honour are refused before a cluster is started or reached, in one
+line that says what to use instead: an index other than ``exact`` (``auto`` resolved on the rows
+of the table; when invalid rows are dropped only the driver knows them, and it refuses there) and
+``threads`` other than 0 (for mining and scoring: it sizes a run in one process).
 
 Scoring (:func:`score_on_cluster`)
 ----------------------------------
@@ -83,6 +89,7 @@ import contextlib
 import dataclasses
 import functools
 import hashlib
+import logging
 import operator
 import os
 import shutil
@@ -168,8 +175,10 @@ def cluster(compute):
     if not isinstance(compute, ComputeConfig) or compute.scheduler is None:
         raise TripletkitError("compute must be a ComputeConfig with a scheduler ('local-cluster' or an address)")
     if compute.scheduler == LOCAL_CLUSTER:
+        # Workers log a task's error with its traceback; the client raises that error itself (one
+        # line on the command line, the remote traceback with --debug), so only crashes are logged.
         local = distributed.LocalCluster(n_workers=compute.workers, threads_per_worker=1, processes=True,
-                                         dashboard_address=None, silence_logs=40)
+                                         dashboard_address=None, silence_logs=logging.CRITICAL)
         try:
             with distributed.Client(local) as client:
                 yield client
@@ -186,6 +195,47 @@ def cluster(compute):
         ) from None
     with client:
         yield client
+
+
+def _refuse_unsupported(what, config, rows=None):
+    """Refuse, before a cluster is started, the options a cluster run cannot honour.
+
+    ``what`` is ``"mine"`` or ``"score"``; ``rows`` is the row count ``index = auto`` resolves
+    on (None: unknown, and the driver refuses an approximate index itself when it resolves to one).
+    """
+    from .index import resolve_kind
+
+    if what == "mine":
+        kind = config.index
+        if kind == "auto" and rows is not None:
+            kind = resolve_kind(kind, rows, config.exact_below)
+            if kind != "exact":
+                raise TripletkitError(
+                    f"index = auto picks {kind} for {rows:,} rows (exact_below = {config.exact_below:,}), and only "
+                    "index = exact runs with a scheduler; pass --index exact or run without --scheduler"
+                )
+        elif kind not in ("auto", "exact"):
+            raise TripletkitError(
+                f"index = {kind} is not available with a scheduler, only index = exact is; pass --index exact "
+                "or run without --scheduler"
+            )
+    if config.threads:
+        raise TripletkitError(
+            f"threads = {config.threads} applies to a run in one process and is not used with a scheduler, where "
+            "the workers share the work; pass --threads 0 (with a scheduler, --workers and --partitions size the run)"
+        )
+
+
+def _rows_to_mine(source, path, options):
+    """Rows ``index = auto`` resolves on, when the client can know them without reading the table."""
+    if isinstance(source, EmbeddingTable):
+        return source.n
+    try:
+        rows = sum(pq.ParquetFile(f).metadata.num_rows for f in _files(path))
+    except (OSError, pa.ArrowException):  # unreadable here: the driver says what is wrong with it
+        return None
+    # with drop_invalid the valid rows may be fewer: leave the decision to the driver
+    return None if options.get("drop_invalid") else rows
 
 
 def _shards(client, compute):
@@ -427,6 +477,7 @@ def score_on_cluster(source, out=None, *, config=None, compute, force=False, qui
     if out is not None:
         check_output(out, force=force, directory=True)
     path, shown, options, expect = _source(source, table_options)
+    _refuse_unsupported("score", config)
     run_config = config
     if config.pairs is not None:  # the workers need a path they can resolve
         run_config = dataclasses.replace(config, pairs=str(Path(config.pairs).resolve()))
@@ -753,6 +804,7 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
         check_output(dup_out, force=force, directory=False)
         check_not_input(out, [path])
         check_not_input(dup_out, [path])
+    _refuse_unsupported("mine", cfg, _rows_to_mine(source, path, options) if cfg.index == "auto" else None)
     with cluster(compute) as client, contextlib.ExitStack() as stack:
         parts = _shards(client, compute)
         workers = len(client.scheduler_info().get("workers", {}))
