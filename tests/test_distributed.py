@@ -411,3 +411,92 @@ def test_local_cluster_error_is_raised_without_the_workers_traceback(tmp_path, c
         score(tmp_path / "bad.parquet", quiet=True, compute=ComputeConfig(scheduler="local-cluster", workers=1))
     err = capfd.readouterr().err
     assert "Traceback" not in err and "Compute Failed" not in err, err
+
+
+# ----------------------------------------------------------------------------- a cluster without workers
+
+
+def _finishes(call, seconds=300):
+    """``call()`` run in a thread, its exception raised here. A run that waits for ever fails the
+    test after ``seconds`` instead of hanging (a bound on a hang, far above any run's time here)."""
+    done = {}
+
+    def target():
+        try:
+            call()
+        except BaseException as exc:  # raised again in the test's thread
+            done["error"] = exc
+        else:
+            done["error"] = None
+
+    thread = threading.Thread(target=target, daemon=True)
+    thread.start()
+    thread.join(seconds)
+    assert "error" in done, "the run was still waiting"
+    if done["error"] is not None:
+        raise done["error"]
+
+
+def test_a_cluster_without_workers_stops_the_run(tmp_path):
+    with distributed.LocalCluster(n_workers=0, processes=True, dashboard_address=None, silence_logs=50) as lc:
+        compute = ComputeConfig(scheduler=lc.scheduler_address, no_workers_timeout=0.5)
+        runs = {"mine": lambda: mine(TRAIN, tmp_path / "t.parquet", quiet=True, compute=compute),
+                "score": lambda: score(HELDOUT, tmp_path / "rep", quiet=True, compute=compute)}
+        for verb, run in runs.items():
+            with pytest.raises(TripletkitError, match=r"^the Dask cluster at tcp://\S+ has had no worker for 0\.5 s, so "
+                                                      r"the run was stopped and nothing was written; start workers") as info:
+                _finishes(run)
+            assert "\n" not in str(info.value)
+            assert list(tmp_path.iterdir()) == [], verb
+
+
+def test_cli_run_whose_workers_all_died_stops_in_one_line(tmp_path):
+    """The issue's case: ``mine --scheduler tcp://...`` whose only worker is killed (no nanny to
+    start it again). The worker is kept busy until it dies, so the driver has surely not finished."""
+    out = tmp_path / "work"
+    out.mkdir()
+    with distributed.LocalCluster(n_workers=0, processes=True, dashboard_address=None, silence_logs=50) as lc, \
+            distributed.Client(lc.scheduler_address) as client:
+        addr = lc.scheduler_address
+        worker = subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_worker", addr, "--nthreads", "1",
+                                   "--no-nanny", "--no-dashboard"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        run = None
+        try:
+            client.wait_for_workers(1, timeout=120)
+            # the worker's one thread sleeps: the driver can be queued but never run
+            busy = client.submit(time.sleep, 3600, pure=False)
+
+            def executing():
+                return sum(client.run(lambda dask_worker: sum(
+                    ts.state == "executing" for ts in dask_worker.state.tasks.values())).values())
+
+            deadline = time.monotonic() + 120
+            while not executing() and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert executing() == 1
+            run = subprocess.Popen([sys.executable, "-m", "tripletkit", "mine", str(TRAIN), "--out",
+                                    str(out / "t.parquet"), "--quiet", "--scheduler", addr, "--no-workers-timeout", "1"],
+                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+            def driver_submitted():
+                return client.run_on_scheduler(lambda dask_scheduler: any(
+                    str(k).startswith("tripletkit-mine-driver-") for k in dask_scheduler.tasks))
+
+            deadline = time.monotonic() + 120
+            while not driver_submitted() and run.poll() is None and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert driver_submitted(), run.communicate()
+            worker.kill()  # every worker of the cluster is now dead
+            worker.wait()
+            del busy
+            _, err = run.communicate(timeout=300)  # a bound on a hang, not on speed
+        finally:
+            for proc in (worker, run):
+                if proc is not None and proc.poll() is None:
+                    proc.kill()
+                    proc.wait()
+    assert run.returncode == 2, err
+    assert err.splitlines() == [
+        f"error: the Dask cluster at {addr} has had no worker for 1 s, so the run was stopped and nothing was "
+        "written; start workers (or raise [compute] no_workers_timeout) and run it again"]
+    assert list(out.iterdir()) == []
