@@ -298,8 +298,10 @@ def test_errors_name_the_problem(compute, tmp_path, rng):
         score(EmbeddingTable.from_arrays(np.arange(20), np.repeat(np.arange(5), 4), x), quiet=True, compute=compute)
     with pytest.raises(TripletkitError, match="does not exist"):
         score(tmp_path / "nothing.parquet", quiet=True, compute=compute)
+    # index = auto on a table whose invalid rows are dropped: only the driver knows the rows it
+    # resolves on, so the driver refuses (the options a client can check are refused before, below)
     with pytest.raises(TripletkitError, match="index = ivf is not available with a scheduler"):
-        mine(TRAIN, quiet=True, compute=compute, index="ivf")
+        mine(TRAIN, quiet=True, compute=compute, exact_below=100, table_options={"drop_invalid": True})
     with pytest.raises(TripletkitError, match="cannot reach the Dask scheduler 'nowhere'"):
         score(HELDOUT, quiet=True, compute=ComputeConfig(scheduler="nowhere"))
     (tmp_path / "t.parquet").mkdir()
@@ -334,3 +336,171 @@ def test_without_a_scheduler_dask_is_never_imported(tmp_path):
     assert res.returncode == 0, res.stderr
     assert res.stdout.strip().endswith("imported: []")
     assert (tmp_path / "t.parquet").is_file()
+
+
+# ----------------------------------------------------------------------------- refused before a cluster starts
+
+
+def _no_cluster(*args, **kwargs):
+    raise AssertionError("a cluster was started for a run that must be refused before")
+
+
+REFUSED = [
+    ("mine", {"index": "hnsw"},
+     r"^index = hnsw is not available with a scheduler, only index = exact is; pass --index exact"),
+    ("mine", {"index": "ivf"}, r"^index = ivf is not available with a scheduler"),
+    # the demo table has 3,918 rows: auto resolves to ivf at or above exact_below
+    ("mine", {"exact_below": 3918}, r"^index = auto picks ivf for 3,918 rows \(exact_below = 3,918\), and only index = "
+                                    r"exact runs with a scheduler; pass --index exact"),
+    ("mine", {"threads": 2}, r"^threads = 2 applies to a run in one process and is not used with a scheduler.*"
+                             r"pass --threads 0"),
+    ("score", {"threads": 1}, r"^threads = 1 applies to a run in one process"),
+]
+
+
+@pytest.mark.parametrize("scheduler", ["local-cluster", "tcp://127.0.0.1:9"])
+@pytest.mark.parametrize("verb, options, match", REFUSED, ids=[f"{v}-{'-'.join(o)}" for v, o, _ in REFUSED])
+def test_unsupported_options_are_refused_before_a_cluster_starts(tmp_path, monkeypatch, scheduler, verb, options,
+                                                                 match):
+    import tripletkit.distributed as D
+
+    # no cluster may be started or reached (tcp://127.0.0.1:9 is never a Dask scheduler)
+    monkeypatch.setattr(D, "cluster", _no_cluster)
+    compute = ComputeConfig(scheduler=scheduler)
+    with pytest.raises(TripletkitError, match=match):
+        if verb == "mine":
+            mine(TRAIN, tmp_path / "t.parquet", quiet=True, compute=compute, **options)
+        else:
+            score(HELDOUT, tmp_path / "rep", quiet=True, compute=compute, config=EvaluationConfig(**options))
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_auto_index_is_resolved_on_the_rows_of_a_table_object_and_of_a_folder(tmp_path, rng, monkeypatch):
+    import tripletkit.distributed as D
+
+    monkeypatch.setattr(D, "cluster", _no_cluster)
+    compute = ComputeConfig(scheduler="local-cluster")
+    ids, labels, x, groups = _random_table(rng, n=300)
+    folder = _write_folder(tmp_path / "train", ids, labels, x, groups)
+    for source in (folder, EmbeddingTable.read(folder)):
+        with pytest.raises(TripletkitError, match=r"index = auto picks ivf for 300 rows \(exact_below = 300\)"):
+            mine(source, quiet=True, compute=compute, exact_below=300)
+    # one row fewer than exact_below: exact, so the run goes on to start its cluster
+    with pytest.raises(AssertionError, match="a cluster was started"):
+        mine(folder, quiet=True, compute=compute, exact_below=301)
+
+
+def test_cli_refuses_an_approximate_index_in_one_line(tmp_path, monkeypatch, capsys):
+    import tripletkit.distributed as D
+    from tripletkit.cli import main
+
+    monkeypatch.setattr(D, "cluster", _no_cluster)
+    code = main(["mine", str(TRAIN), "--out", str(tmp_path / "t.parquet"), "--scheduler", "local-cluster",
+                 "--index", "hnsw"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.splitlines() == ["error: index = hnsw is not available with a scheduler, only index = exact is; "
+                                "pass --index exact or run without --scheduler"]
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_local_cluster_error_is_raised_without_the_workers_traceback(tmp_path, capfd):
+    # the driver fails on its worker: the client raises the error, no worker logs a traceback
+    bad = to_arrow(np.arange(6), np.repeat([1, 2], 3), np.vstack([np.zeros((1, 3)), np.ones((5, 3))]))
+    pq.write_table(bad, tmp_path / "bad.parquet")
+    with pytest.raises(TripletkitError, match="1 zero-norm rows"):
+        score(tmp_path / "bad.parquet", quiet=True, compute=ComputeConfig(scheduler="local-cluster", workers=1))
+    err = capfd.readouterr().err
+    assert "Traceback" not in err and "Compute Failed" not in err, err
+
+
+# ----------------------------------------------------------------------------- a cluster without workers
+
+
+def _finishes(call, seconds=300):
+    """``call()`` run in a thread, its exception raised here. A run that waits for ever fails the
+    test after ``seconds`` instead of hanging (a bound on a hang, far above any run's time here)."""
+    done = {}
+
+    def target():
+        try:
+            call()
+        except BaseException as exc:  # raised again in the test's thread
+            done["error"] = exc
+        else:
+            done["error"] = None
+
+    thread = threading.Thread(target=target, daemon=True)
+    thread.start()
+    thread.join(seconds)
+    assert "error" in done, "the run was still waiting"
+    if done["error"] is not None:
+        raise done["error"]
+
+
+def test_a_cluster_without_workers_stops_the_run(tmp_path):
+    with distributed.LocalCluster(n_workers=0, processes=True, dashboard_address=None, silence_logs=50) as lc:
+        compute = ComputeConfig(scheduler=lc.scheduler_address, no_workers_timeout=0.5)
+        runs = {"mine": lambda: mine(TRAIN, tmp_path / "t.parquet", quiet=True, compute=compute),
+                "score": lambda: score(HELDOUT, tmp_path / "rep", quiet=True, compute=compute)}
+        for verb, run in runs.items():
+            message = (r"^the Dask cluster at tcp://\S+ has had no worker for 0\.5 s, so the run was stopped and "
+                       r"nothing was written; start workers")
+            with pytest.raises(TripletkitError, match=message) as info:
+                _finishes(run)
+            assert "\n" not in str(info.value)
+            assert list(tmp_path.iterdir()) == [], verb
+
+
+def test_cli_run_whose_workers_all_died_stops_in_one_line(tmp_path):
+    """The issue's case: ``mine --scheduler tcp://...`` whose only worker is killed (no nanny to
+    start it again). The worker is kept busy until it dies, so the driver has surely not finished."""
+    out = tmp_path / "work"
+    out.mkdir()
+    with distributed.LocalCluster(n_workers=0, processes=True, dashboard_address=None, silence_logs=50) as lc, \
+            distributed.Client(lc.scheduler_address) as client:
+        addr = lc.scheduler_address
+        worker = subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_worker", addr, "--nthreads", "1",
+                                   "--no-nanny", "--no-dashboard"],
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        run = None
+        try:
+            client.wait_for_workers(1, timeout=300)
+            # the worker's one thread sleeps: the driver can be queued but never run
+            busy = client.submit(time.sleep, 3600, pure=False)
+
+            def executing():
+                return sum(client.run(lambda dask_worker: sum(
+                    ts.state == "executing" for ts in dask_worker.state.tasks.values())).values())
+
+            deadline = time.monotonic() + 300  # bounds on a hang, not on speed
+            while not executing() and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert executing() == 1
+            run = subprocess.Popen([sys.executable, "-m", "tripletkit", "mine", str(TRAIN), "--out",
+                                    str(out / "t.parquet"), "--quiet", "--scheduler", addr,
+                                    "--no-workers-timeout", "1"],
+                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+            def driver_submitted():
+                return client.run_on_scheduler(lambda dask_scheduler: any(
+                    str(k).startswith("tripletkit-mine-driver-") for k in dask_scheduler.tasks))
+
+            deadline = time.monotonic() + 300  # bounds on a hang, not on speed
+            while not driver_submitted() and run.poll() is None and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert driver_submitted(), run.communicate()
+            worker.kill()  # every worker of the cluster is now dead
+            worker.wait()
+            del busy
+            _, err = run.communicate(timeout=300)  # a bound on a hang, not on speed
+        finally:
+            for proc in (worker, run):
+                if proc is not None and proc.poll() is None:
+                    proc.kill()
+                    proc.wait()
+    assert run.returncode == 2, err
+    assert err.splitlines() == [
+        f"error: the Dask cluster at {addr} has had no worker for 1 s, so the run was stopped and nothing was "
+        "written; start workers (or raise [compute] no_workers_timeout) and run it again"]
+    assert list(out.iterdir()) == []

@@ -1,11 +1,15 @@
 """Interrupting a run (SIGINT or SIGTERM during mining, scoring or a sweep) leaves no output and no
 temporary file behind, and the command exits with 130 (SIGINT) or 143 (SIGTERM).
 
-Each test starts ``python -m tripletkit ...`` on an input big enough to take several seconds,
-waits until the run is demonstrably in the middle of its work (a progress line on stderr, or
-the temporary output file of :func:`tripletkit._io.atomic_path` in the output folder), sends the
-signal and checks the output folder afterwards: it must be empty. The inputs live in another
-folder, which must be unchanged.
+Each test runs the command line in a child process (``tripletkit.cli.main``, as ``python -m
+tripletkit`` does) that holds at a definite point inside the work (after a row group of the
+triplet file was written, when a worker thread of the all-pairs pass starts, after a figure of a
+report was saved): it prints ``[hold] ...`` on stderr and waits there until a signal arrives. The
+test waits for that line, checks that the run is where it should be (its temporary output
+exists), sends the signal and checks the output folder afterwards: it must be empty. The inputs
+live in another folder, which must be unchanged. Holding makes the outcome independent of the
+machine's speed and load: the run cannot finish before the signal, and the signal cannot come
+before the run is inside its work.
 """
 
 import os
@@ -23,16 +27,79 @@ import pytest
 from tripletkit.demo import demo_paths
 from tripletkit.table import write_table
 
-# How long a run may take to reach the point where the signal is sent (a loaded CI machine).
-_REACH_SECONDS = 120
+# A bound on a hang (a child that never reaches its hold or never exits), not on speed: far above
+# what any of these runs takes on a loaded 2-core machine.
+_HANG_SECONDS = 600
+
+# Run by the child: install one hold, then run the command line. signal.set_wakeup_fd makes every
+# signal that arrives write a byte to a pipe, which releases a hold in any thread; a hold in the
+# main thread is interrupted by the signal's handler (KeyboardInterrupt or the SIGTERM exit) itself.
+_CHILD = r"""
+import os, signal, sys, threading
+
+hold_at, argv = sys.argv[1], sys.argv[2:]
+wake_read, wake_write = os.pipe()
+os.set_blocking(wake_write, False)
+signal.set_wakeup_fd(wake_write, warn_on_full_buffer=False)
+lock, held = threading.Lock(), []
+
+
+def hold(where):
+    with lock:
+        if held:
+            return  # only the first call holds; other threads go on
+        held.append(where)
+    print(f"[hold] {where} ({threading.current_thread().name})", file=sys.stderr, flush=True)
+    os.read(wake_read, 1)
+
+
+def hold_after(cls, name, where):
+    original = getattr(cls, name)
+
+    def wrapper(*args, **kwargs):
+        result = original(*args, **kwargs)
+        hold(where)
+        return result
+
+    setattr(cls, name, wrapper)
+
+
+if hold_at == "row-group":
+    import pyarrow.parquet as pq
+
+    hold_after(pq.ParquetWriter, "write_table", "a row group was written")
+elif hold_at == "worker-thread":
+    from concurrent.futures import ThreadPoolExecutor
+
+    submit = ThreadPoolExecutor.submit
+
+    def submit_held(self, fn, *args, **kwargs):
+        def task(*a, **k):
+            hold("a worker thread starts")
+            return fn(*a, **k)
+
+        return submit(self, task, *args, **kwargs)
+
+    ThreadPoolExecutor.submit = submit_held
+elif hold_at == "figure":
+    from matplotlib.figure import Figure
+
+    hold_after(Figure, "savefig", "a figure was saved")
+else:
+    raise SystemExit(f"unknown hold {hold_at!r}")
+
+from tripletkit.cli import main
+
+sys.exit(main(argv))
+"""
 
 
 @pytest.fixture(scope="module")
 def inputs(tmp_path_factory):
-    """Seeded clustered tables: mining 8,000 x 32 and scoring 12,000 x 32 take several seconds."""
+    """Seeded clustered tables (mining 3,000 x 32, scoring 3,000 x 32) and a short sweep config."""
     folder = tmp_path_factory.mktemp("inputs")
     rng = np.random.default_rng(20261201)
-    for name, n, k in (("mine.parquet", 8000, 400), ("score.parquet", 12000, 600)):
+    for name, n, k in (("mine.parquet", 3000, 150), ("score.parquet", 3000, 150)):
         labels = np.repeat(np.arange(k), n // k)
         X = rng.normal(size=(k, 32))[labels] + rng.normal(size=(n, 32))
         write_table(folder / name, np.arange(n), labels, X)
@@ -41,7 +108,7 @@ def inputs(tmp_path_factory):
         "[sweep]\nmargins = [0.05, 0.2, 0.4]\nprimary = \"eer\"\nbootstrap = 20\n"
         f"[data]\ntrain = \"{Path(demo['train_features']).resolve()}\"\n"
         f"heldout = \"{Path(demo['heldout_features']).resolve()}\"\n"
-        "[head]\ndim = 16\nepochs = 40\n[evaluation]\nbootstrap = 20\n"
+        "[head]\ndim = 16\nepochs = 2\n[evaluation]\nbootstrap = 20\n"
     )
     return folder
 
@@ -67,34 +134,35 @@ class _Watcher:
         with self._new:
             self._new.notify_all()
 
-    def wait_for(self, pattern, timeout):
+    def wait_for(self, pattern, timeout=_HANG_SECONDS):
+        """Whether a line matching ``pattern`` arrived (False: the process ended without it)."""
         deadline = time.monotonic() + timeout
         with self._new:
             while not any(re.search(pattern, line) for line in self.lines):
                 left = deadline - time.monotonic()
-                if left <= 0 or self.proc.poll() is not None:
+                # the reader thread has seen the end of stderr: no line can come any more
+                if left <= 0 or not self._thread.is_alive():
                     return False
                 self._new.wait(min(left, 0.2))
         return True
 
-    def finish(self, timeout=120):
+    def finish(self, timeout=_HANG_SECONDS):
         self.proc.wait(timeout=timeout)
         self._thread.join(timeout=10)
         return self.lines
 
 
-def _wait_for_file(folder, glob, proc, timeout):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline and proc.poll() is None:
-        if list(Path(folder).glob(glob)):
-            return True
-        time.sleep(0.02)
-    return False
-
-
-def _start(argv, cwd):
-    return subprocess.Popen([sys.executable, "-m", "tripletkit", *argv], cwd=cwd, stdout=subprocess.PIPE,
+def _start_held(hold_at, argv, cwd):
+    """Start the command line ``argv`` in a child that holds at ``hold_at``; wait until it holds."""
+    proc = subprocess.Popen([sys.executable, "-c", _CHILD, hold_at, *argv], cwd=cwd, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
+    watcher = _Watcher(proc)
+    if not watcher.wait_for(r"^\[hold\] "):
+        proc.kill()
+        pytest.fail(f"the run never reached its hold ({hold_at}):\n" + "\n".join(watcher.finish()[-20:]))
+    # it waits in the hold until the signal: it cannot have finished
+    assert proc.poll() is None
+    return proc, watcher
 
 
 def _check_after(proc, watcher, sig, work, inputs, before):
@@ -102,7 +170,7 @@ def _check_after(proc, watcher, sig, work, inputs, before):
     expected = {signal.SIGINT: 130, signal.SIGTERM: 143}[sig]
     assert proc.returncode == expected, (proc.returncode, lines[-5:])
     assert lines[-1] == ("interrupted" if sig == signal.SIGINT else "terminated") + ": no output was written"
-    assert not any("Traceback" in line for line in lines)
+    assert not any("Traceback" in line for line in lines), lines
     assert _listing(work) == []  # no output, no temporary dot-file, no old copy moved aside
     assert _listing(inputs) == before
 
@@ -113,12 +181,11 @@ SIGNALS = [signal.SIGINT, signal.SIGTERM]
 @pytest.mark.parametrize("sig", SIGNALS, ids=["SIGINT", "SIGTERM"])
 def test_interrupted_mining_leaves_nothing(inputs, tmp_path, sig):
     before = _listing(inputs)
-    proc = _start(["mine", str(inputs / "mine.parquet"), "--out", str(tmp_path / "triplets.parquet")], tmp_path)
-    watcher = _Watcher(proc)
-    # the temporary triplet file exists for the whole run: the signal lands mid-output
-    assert _wait_for_file(tmp_path, ".triplets.parquet.tmp-*", proc, _REACH_SECONDS), watcher.finish()
-    time.sleep(0.3)
-    assert proc.poll() is None, "mining finished before the signal; use a bigger input"
+    proc, watcher = _start_held("row-group", ["mine", str(inputs / "mine.parquet"), "--out",
+                                              str(tmp_path / "triplets.parquet")], tmp_path)
+    # mid-output: the temporary triplet file holds a row group
+    assert list(tmp_path.glob(".triplets.parquet.tmp-*")), _listing(tmp_path)
+    assert not (tmp_path / "triplets.parquet").exists()
     proc.send_signal(sig)
     _check_after(proc, watcher, sig, tmp_path, inputs, before)
 
@@ -126,47 +193,39 @@ def test_interrupted_mining_leaves_nothing(inputs, tmp_path, sig):
 @pytest.mark.parametrize("sig", SIGNALS, ids=["SIGINT", "SIGTERM"])
 def test_interrupted_scoring_leaves_nothing(inputs, tmp_path, sig):
     before = _listing(inputs)
-    proc = _start(["score", str(inputs / "score.parquet"), "--out", str(tmp_path / "report"), "--bootstrap", "20"],
-                  tmp_path)
-    watcher = _Watcher(proc)
-    # during the all-pairs pass
-    assert watcher.wait_for(r"^\[score\] verification over all", _REACH_SECONDS), watcher.finish()
-    time.sleep(0.3)
-    assert proc.poll() is None, "scoring finished before the signal; use a bigger input"
+    # two threads and six blocks, so that the all-pairs pass runs in worker threads on any machine
+    proc, watcher = _start_held("worker-thread", ["score", str(inputs / "score.parquet"), "--out",
+                                                  str(tmp_path / "report"), "--bootstrap", "20", "--threads", "2",
+                                                  "--block-rows", "500"], tmp_path)
+    # held in a worker thread of the all-pairs pass; the main thread waits for the workers
+    stage = [i for i, line in enumerate(watcher.lines) if re.search(r"^\[score\] verification over all", line)]
+    hold = [i for i, line in enumerate(watcher.lines) if line.startswith("[hold] ")]
+    assert stage and stage[0] < hold[0], watcher.lines
+    assert "MainThread" not in watcher.lines[hold[0]]
     proc.send_signal(sig)
     _check_after(proc, watcher, sig, tmp_path, inputs, before)
 
 
 def test_scoring_interrupted_while_writing_leaves_nothing(inputs, tmp_path):
     before = _listing(inputs)
-    proc = _start(["score", str(inputs / "mine.parquet"), "--out", str(tmp_path / "report"), "--bootstrap", "20"],
-                  tmp_path)
-    watcher = _Watcher(proc)
-    # the temporary report folder appears only when the report is being written (plots, JSON)
-    assert _wait_for_file(tmp_path, ".report.tmp-*", proc, _REACH_SECONDS), watcher.finish()
-    if proc.poll() is not None:
-        pytest.fail("the report was written before the signal could be sent")
+    proc, watcher = _start_held("figure", ["score", str(inputs / "mine.parquet"), "--out", str(tmp_path / "report"),
+                                           "--bootstrap", "20"], tmp_path)
+    # the temporary report folder holds the first plot; the report is not written yet
+    (temp,) = tmp_path.glob(".report.tmp-*")
+    assert [p.name for p in temp.glob("*.png")] and not (temp / "report.json").exists()
     proc.send_signal(signal.SIGINT)
-    lines = watcher.finish()
-    if proc.returncode == 0:
-        # the writing took less than the time to send a signal: the output must then be whole
-        assert (tmp_path / "report" / "report.json").is_file() and _listing(tmp_path)[0] == "report"
-        assert not [p for p in _listing(tmp_path) if p.startswith(".")]
-        return
-    assert proc.returncode == 130 and lines[-1] == "interrupted: no output was written"
-    assert _listing(tmp_path) == [] and _listing(inputs) == before
+    _check_after(proc, watcher, signal.SIGINT, tmp_path, inputs, before)
 
 
 @pytest.mark.parametrize("sig", SIGNALS, ids=["SIGINT", "SIGTERM"])
 def test_interrupted_sweep_leaves_nothing(inputs, tmp_path, sig):
     before = _listing(inputs)
-    proc = _start(["sweep", str(inputs / "sweep.toml"), "--out", str(tmp_path / "sweep")], tmp_path)
-    watcher = _Watcher(proc)
-    # the sweep folder is a temporary folder from the first run on: wait for an epoch line
-    assert watcher.wait_for(r"^\[sweep\] run 1/3 .*epoch", _REACH_SECONDS), watcher.finish()
-    assert list(tmp_path.glob(".sweep.tmp-*")), "the temporary sweep folder should exist mid-run"
-    time.sleep(0.3)
-    assert proc.poll() is None, "the sweep finished before the signal; use more epochs"
+    proc, watcher = _start_held("figure", ["sweep", str(inputs / "sweep.toml"), "--out", str(tmp_path / "sweep")],
+                                tmp_path)
+    # held while the first run's report is written, inside the temporary sweep folder
+    assert any(re.search(r"^\[sweep\] run 1/3 .*epoch", line) for line in watcher.lines), watcher.lines
+    (temp,) = tmp_path.glob(".sweep.tmp-*")
+    assert list(temp.rglob("*.png"))
     proc.send_signal(sig)
     _check_after(proc, watcher, sig, tmp_path, inputs, before)
 

@@ -164,6 +164,8 @@ class ComputeConfig:
     scheduler: str | None = _opt(None, "Dask scheduler address or 'local-cluster' (default: this process)")
     workers: int = _opt(2, "workers of a local cluster", low=1)
     partitions: int = _opt(0, "row partitions of the work (0: twice the workers)", low=0)
+    no_workers_timeout: float = _opt(300.0, "seconds a run waits while its cluster has no worker before it stops "
+                                     "with nothing written", low=0.0, open_low=True)
 
 
 @dataclass(frozen=True)

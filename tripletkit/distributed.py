@@ -8,7 +8,13 @@ is imported and Dask is not needed (it is the optional extra ``tripletkit[dask]`
 
 Every worker, and the client, must see the input table and the output folder under the same
 path (a shared filesystem); paths are made absolute on the client. The client reads nothing but
-the file names: the workers read the Parquet dataset.
+the file names (and, for ``index = auto``, the row counts in the Parquet footers): the workers
+read the Parquet dataset.
+
+Options a cluster run cannot honour are refused before a cluster is started or reached, in one
+line that says what to use instead: an index other than ``exact`` (``auto`` resolved on the rows
+of the table; when invalid rows are dropped only the driver knows them, and it refuses there) and
+``threads`` other than 0 (for mining and scoring: it sizes a run in one process).
 
 Scoring (:func:`score_on_cluster`)
 ----------------------------------
@@ -69,9 +75,15 @@ not at all. When the client dies:
 - a hard kill (SIGKILL, power loss): ``.OUT.tmp-*`` (holding an unfinished attempt) and
   ``.<stem>.duplicates.parquet.tmp-*`` stay behind beside ``OUT``; delete them.
 
-In both cases the driver task, which Dask cannot interrupt, stops at its next block of anchors:
-it checks that its folder still exists and that the scheduler still wants its result (with
-``local-cluster`` the workers die with the client anyway).
+In both cases the driver task, which Dask cannot interrupt, stops at its next block of anchors
+or while it waits on its tasks: it checks that its folder still exists and that the scheduler
+still wants its result (with ``local-cluster`` the workers die with the client anyway).
+
+When every worker is gone (and none joins), Dask waits for one for ever. Every wait of a run on
+its tasks (the client's on the driver, the driver's on its search or block tasks) asks the
+scheduler at least every second how many workers it has; after ``compute.no_workers_timeout``
+seconds (default 300) without any, the run stops with one error line and its temporary output is
+removed, as after any other error.
 
 Dask moves task arguments and results between its processes with its own serialisation (pickle
 among them): connect only to a scheduler you trust.
@@ -83,10 +95,12 @@ import contextlib
 import dataclasses
 import functools
 import hashlib
+import logging
 import operator
 import os
 import shutil
 import sys
+import threading
 import time
 import uuid
 import warnings
@@ -112,6 +126,8 @@ PART_ROWS = 1 << 20
 _QUERY_BYTES = 4 << 20
 # Blocks of anchors searched ahead of the one the miner selects from.
 _AHEAD = 1
+# Most seconds between two looks at the cluster while a run waits on its tasks.
+_POLL_SECONDS = 1.0
 
 
 def _say(quiet, verb, text):
@@ -143,6 +159,16 @@ def _watch_driver():
     return cancelled
 
 
+def _stopper(cancelled):
+    """A function that raises when ``cancelled()`` (see :func:`_watch_driver`) says the run was let go."""
+
+    def check():
+        if cancelled():
+            raise TripletkitError("the client of this run is gone or cancelled it; the run was stopped")
+
+    return check
+
+
 def _distributed():
     try:
         import distributed
@@ -168,8 +194,10 @@ def cluster(compute):
     if not isinstance(compute, ComputeConfig) or compute.scheduler is None:
         raise TripletkitError("compute must be a ComputeConfig with a scheduler ('local-cluster' or an address)")
     if compute.scheduler == LOCAL_CLUSTER:
+        # Workers log a task's error with its traceback; the client raises that error itself (one
+        # line on the command line, the remote traceback with --debug), so only crashes are logged.
         local = distributed.LocalCluster(n_workers=compute.workers, threads_per_worker=1, processes=True,
-                                         dashboard_address=None, silence_logs=40)
+                                         dashboard_address=None, silence_logs=logging.CRITICAL)
         try:
             with distributed.Client(local) as client:
                 yield client
@@ -186,6 +214,97 @@ def cluster(compute):
         ) from None
     with client:
         yield client
+
+
+def _workers(client):
+    """Number of workers the scheduler has now."""
+    try:
+        info = client.scheduler_info(n_workers=0)  # the count without every worker's details
+    except TypeError:  # distributed before 2025: no n_workers argument
+        info = client.scheduler_info()
+    return int(info.get("n_workers", len(info.get("workers", {}))))
+
+
+def _gather(client, futures, no_workers_timeout, check=None):
+    """The results of ``futures``, waiting no longer than ``no_workers_timeout`` seconds without a worker.
+
+    Dask waits for a worker forever: when every worker has died, a task stays pending until one
+    joins. While the futures are unfinished, the scheduler is asked every :data:`_POLL_SECONDS`
+    (at most) how many workers it has; once it has had none for ``no_workers_timeout`` seconds the
+    run stops with a :class:`TripletkitError`. ``check()``, called as often, raises to stop the run
+    for another reason (a driver whose client is gone).
+    """
+    futures = list(futures)
+    if not all(f.done() for f in futures):
+        left, lock, finished = [len(futures)], threading.Lock(), threading.Event()
+
+        def one_finished(_):
+            with lock:
+                left[0] -= 1
+                if not left[0]:
+                    finished.set()
+
+        for f in futures:
+            f.add_done_callback(one_finished)  # also when it fails or is cancelled
+        poll = min(_POLL_SECONDS, no_workers_timeout / 4)
+        empty_since = None
+        while not finished.wait(poll):
+            if check is not None:
+                check()
+            if _workers(client):
+                empty_since = None
+                continue
+            now = time.monotonic()
+            if empty_since is None:
+                empty_since = now
+            elif now - empty_since >= no_workers_timeout:
+                raise TripletkitError(
+                    f"the Dask cluster at {client.scheduler.address} has had no worker for {no_workers_timeout:g} s, "
+                    "so the run was stopped and nothing was written; start workers (or raise [compute] "
+                    "no_workers_timeout) and run it again"
+                )
+    return client.gather(futures)
+
+
+def _refuse_unsupported(what, config, rows=None):
+    """Refuse, before a cluster is started, the options a cluster run cannot honour.
+
+    ``what`` is ``"mine"`` or ``"score"``; ``rows`` is the row count ``index = auto`` resolves
+    on (None: unknown, and the driver refuses an approximate index itself when it resolves to one).
+    """
+    from .index import resolve_kind
+
+    if what == "mine":
+        kind = config.index
+        if kind == "auto" and rows is not None:
+            kind = resolve_kind(kind, rows, config.exact_below)
+            if kind != "exact":
+                raise TripletkitError(
+                    f"index = auto picks {kind} for {rows:,} rows (exact_below = {config.exact_below:,}), and only "
+                    "index = exact runs with a scheduler; pass --index exact or run without --scheduler"
+                )
+        elif kind not in ("auto", "exact"):
+            raise TripletkitError(
+                f"index = {kind} is not available with a scheduler, only index = exact is; pass --index exact "
+                "or run without --scheduler"
+            )
+    if config.threads:
+        raise TripletkitError(
+            f"threads = {config.threads} applies to a run in one process and is not used with a scheduler, where "
+            "the workers share the work; pass --threads 0 (with a scheduler, --workers and --partitions size the run)"
+        )
+
+
+def _rows_to_mine(source, path, options):
+    """Rows ``index = auto`` resolves on, when the client can know them without reading the table."""
+    if isinstance(source, EmbeddingTable):
+        return source.n
+    try:
+        rows = sum(pq.ParquetFile(f).metadata.num_rows for f in _files(path))
+    except (OSError, pa.ArrowException):  # unreadable here: the driver says what is wrong with it
+        return None
+    # with drop_invalid the valid rows may be fewer: leave the decision to the driver
+    return None if options.get("drop_invalid") else rows
 
 
 def _shards(client, compute):
@@ -319,29 +438,33 @@ def _add(a, b):
     return a + b
 
 
-def _tree_sum(client, futures):
-    """Sum arrays held by workers pairwise on the workers; the client fetches only the total."""
+def _tree_sum(client, futures, wait):
+    """Sum arrays held by workers pairwise on the workers; the client fetches only the total
+    (``wait(futures)`` gathers, see :meth:`_BlockRunner._gather`)."""
     while len(futures) > 1:
         nxt = [client.submit(_add, futures[i], futures[i + 1], pure=False) for i in range(0, len(futures) - 1, 2)]
         if len(futures) % 2:
             nxt.append(futures[-1])
         futures = nxt
-    return futures[0].result()
+    return wait(futures[:1])[0]
 
 
 class _BlockRunner:
     """Runs the passes of ``verify_all_pairs`` as Dask tasks (see ``verification.block_runner``)."""
 
-    def __init__(self, client, parts, limits, cancelled=None):
+    def __init__(self, client, parts, limits, cancelled=None, no_workers_timeout=ComputeConfig.no_workers_timeout):
         self.client = client
         self.parts = parts
         self.limits = limits
         self.data = None
-        self.cancelled = cancelled or (lambda: False)
+        self.no_workers_timeout = no_workers_timeout
+        self._check = _stopper(cancelled or (lambda: False))
+
+    def _gather(self, futures):
+        return _gather(self.client, futures, self.no_workers_timeout, self._check)
 
     def _share(self, blocks):
-        if self.cancelled():
-            raise TripletkitError("the client of this run is gone or cancelled it; the run was stopped")
+        self._check()
         if self.data is None:
             xs, codes = self.client.scatter([blocks.xs, blocks.codes], broadcast=True, hash=False)
             gcodes = None
@@ -354,11 +477,12 @@ class _BlockRunner:
     def first_pass(self, blocks):
         data = self._share(blocks)
         futs = [self.client.submit(_count_task, *data, g, self.limits, pure=False) for g in self.groups]
-        hist = _tree_sum(self.client, [self.client.submit(operator.itemgetter(0), f, pure=False) for f in futs])
+        hist = _tree_sum(self.client, [self.client.submit(operator.itemgetter(0), f, pure=False) for f in futs],
+                         self._gather)
         parts = [self.client.submit(operator.itemgetter(1, 2, 3), f, pure=False) for f in futs]
         gvals, gids, ggrps = [], [], []
         for f in parts:  # in block order, one at a time
-            v, i, g = f.result()
+            v, i, g = self._gather([f])[0]
             gvals.append(v)
             gids.append(i)
             if g is not None:
@@ -376,11 +500,11 @@ class _BlockRunner:
         futs = [self.client.submit(_refine_task, *data, g, args, chunk, use_table, self.limits, pure=False)
                 for g in self.groups]
         for f in futs:  # absorbed in block order, one at a time (window counts can be large)
-            ref.absorb(f.result())
+            ref.absorb(self._gather([f])[0])
             f.release()
 
 
-def _score_task(path, options, expect, config, limits, parts):
+def _score_task(path, options, expect, config, limits, parts, no_workers_timeout):
     from distributed import worker_client
 
     from .evaluate import score
@@ -388,7 +512,8 @@ def _score_task(path, options, expect, config, limits, parts):
 
     cancelled = _watch_driver()
     table = _read_table(path, options, expect)
-    with _limits(limits), worker_client() as client, block_runner(_BlockRunner(client, parts, limits, cancelled)):
+    with (_limits(limits), worker_client() as client,
+          block_runner(_BlockRunner(client, parts, limits, cancelled, no_workers_timeout))):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # the report lists them; the client issues them again
             return score(table, config=config, quiet=True)
@@ -427,6 +552,7 @@ def score_on_cluster(source, out=None, *, config=None, compute, force=False, qui
     if out is not None:
         check_output(out, force=force, directory=True)
     path, shown, options, expect = _source(source, table_options)
+    _refuse_unsupported("score", config)
     run_config = config
     if config.pairs is not None:  # the workers need a path they can resolve
         run_config = dataclasses.replace(config, pairs=str(Path(config.pairs).resolve()))
@@ -436,8 +562,8 @@ def score_on_cluster(source, out=None, *, config=None, compute, force=False, qui
         workers = len(client.scheduler_info().get("workers", {}))
         _say(quiet, "score", f"on {compute.scheduler} ({workers} workers), verification in {parts} task groups")
         fut = client.submit(_score_task, path, options, expect, run_config, limits, parts,
-                            key=f"tripletkit-score-driver-{uuid.uuid4().hex}")
-        report = fut.result()
+                            compute.no_workers_timeout, key=f"tripletkit-score-driver-{uuid.uuid4().hex}")
+        (report,) = _gather(client, [fut], compute.no_workers_timeout)
     # the paths as the caller gave them, as in one process
     report["input"]["path"] = shown
     report["input"]["pair_list"] = None if config.pairs is None else str(config.pairs)
@@ -508,13 +634,15 @@ class _ShardedIndex(SearchIndex):
     while the miner selects from the current one.
     """
 
-    def __init__(self, client, shards, offsets, n, dim, folder=None, cancelled=None):
+    def __init__(self, client, shards, offsets, n, dim, folder=None, cancelled=None,
+                 no_workers_timeout=ComputeConfig.no_workers_timeout):
         super().__init__(None, "exact", n, dim, {})
         self.client = client
         self.shards = shards
         self.offsets = offsets
         self.folder = folder
-        self.cancelled = cancelled or (lambda: False)
+        self.no_workers_timeout = no_workers_timeout
+        self._given_up = _stopper(cancelled or (lambda: False))
         self._plan = None
         self.stats = {"search_tasks": 0, "search_cpu_seconds": 0.0, "search_pairs": 0, "search_wait_seconds": 0.0}
 
@@ -545,12 +673,15 @@ class _ShardedIndex(SearchIndex):
                                                  pure=False) for shard in self.shards]))
         return out
 
-    def within_pieces(self, queries, thresholds, k, *, memory_mb=1024, keep_topk=False):
+    def _check(self):
+        """Raise when the run was given up: its temporary output removed, or its client gone."""
         if self.folder is not None and not Path(self.folder).is_dir():
             # the client removed its temporary output: it was interrupted, so stop here
             raise TripletkitError(f"output folder {self.folder!r} was removed; the run was cancelled")
-        if self.cancelled():
-            raise TripletkitError("the client of this run is gone or cancelled it; the run was stopped")
+        self._given_up()
+
+    def within_pieces(self, queries, thresholds, k, *, memory_mb=1024, keep_topk=False):
+        self._check()
         thresholds = np.asarray(thresholds, dtype=np.float64)
         k = int(min(max(1, k), self.n))
         s = self._planned(queries, thresholds)
@@ -565,7 +696,7 @@ class _ShardedIndex(SearchIndex):
             self._next = s + b
         for sel, futs in pending:
             t0 = time.perf_counter()
-            parts = self.client.gather(futs)
+            parts = _gather(self.client, futs, self.no_workers_timeout, self._check)
             self.stats["search_wait_seconds"] += time.perf_counter() - t0
             self.stats["search_tasks"] += len(parts)
             self.stats["search_cpu_seconds"] += sum(p[5] for p in parts)
@@ -590,7 +721,8 @@ class _ShardedIndex(SearchIndex):
         return _csr(qs[order], rs[order], ss[order], q, widened, topk)
 
 
-def _build_sharded(client, files, options, table, parts, folder, cancelled, embeddings, kind, **_):
+def _build_sharded(client, files, options, table, parts, folder, cancelled, no_workers_timeout, embeddings, kind,
+                   **_):
     """The ``build`` hook of the miner: shards loaded by the workers, checked against the driver's rows."""
     if kind != "exact":
         raise TripletkitError(
@@ -603,7 +735,8 @@ def _build_sharded(client, files, options, table, parts, folder, cancelled, embe
     # pure: the same shard gets the same key, so a driver started again finds shards still held
     shards = [client.submit(_load_shard, files, options, int(a), int(b), pure=True)
               for a, b in zip(edges[:-1], edges[1:])]
-    info = client.gather([client.submit(_shard_summary, s, pure=False) for s in shards])
+    info = _gather(client, [client.submit(_shard_summary, s, pure=False) for s in shards], no_workers_timeout,
+                   _stopper(cancelled))
     sizes = np.array([m for m, _ in info], np.int64)
     offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     if int(sizes.sum()) != table.n:
@@ -613,7 +746,7 @@ def _build_sharded(client, files, options, table, parts, folder, cancelled, embe
         if digest != _digest(embeddings[off:off + m]):
             raise TripletkitError(f"rows {off}..{off + m - 1} read by a worker differ from the driver's; the dataset "
                                   "changed during the run or differs between machines")
-    return _ShardedIndex(client, shards, offsets, table.n, table.dim, folder, cancelled)
+    return _ShardedIndex(client, shards, offsets, table.n, table.dim, folder, cancelled, no_workers_timeout)
 
 
 class _PartWriter:
@@ -665,7 +798,7 @@ class _PartWriter:
             self.current = None
 
 
-def _mine_task(path, options, expect, config, folder, parts, part_rows, return_triplets):
+def _mine_task(path, options, expect, config, folder, parts, part_rows, return_triplets, no_workers_timeout):
     from distributed import worker_client
 
     from .mining import _mine_table
@@ -682,7 +815,8 @@ def _mine_task(path, options, expect, config, folder, parts, part_rows, return_t
 
     def build(*args, **kwargs):
         built.append(_build_sharded(client, _files(path), options, table, parts,
-                                    None if attempt is None else str(attempt), cancelled, *args, **kwargs))
+                                    None if attempt is None else str(attempt), cancelled, no_workers_timeout,
+                                    *args, **kwargs))
         return built[-1]
 
     with worker_client() as client, warnings.catch_warnings(record=True) as caught:
@@ -753,6 +887,7 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
         check_output(dup_out, force=force, directory=False)
         check_not_input(out, [path])
         check_not_input(dup_out, [path])
+    _refuse_unsupported("mine", cfg, _rows_to_mine(source, path, options) if cfg.index == "auto" else None)
     with cluster(compute) as client, contextlib.ExitStack() as stack:
         parts = _shards(client, compute)
         workers = len(client.scheduler_info().get("workers", {}))
@@ -762,8 +897,9 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
             folder = stack.enter_context(atomic_path(out, force=force, directory=True))
             dup_tmp = stack.enter_context(atomic_path(dup_out, force=force))
         fut = client.submit(_mine_task, path, options, expect, cfg, None if folder is None else str(folder), parts,
-                            int(part_rows), return_triplets, key=f"tripletkit-mine-driver-{uuid.uuid4().hex}")
-        summary, attempt, notes = fut.result()
+                            int(part_rows), return_triplets, compute.no_workers_timeout,
+                            key=f"tripletkit-mine-driver-{uuid.uuid4().hex}")
+        ((summary, attempt, notes),) = _gather(client, [fut], compute.no_workers_timeout)
         if folder is not None:
             _settle(folder, attempt, dup_tmp)
     for text, _ in notes:
