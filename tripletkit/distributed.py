@@ -28,14 +28,10 @@ window counts, which are merged. Retrieval, clustering and health run in the dri
 identity-sorted, scaled matrix is scattered to every worker once (each block multiplies a block
 of rows with all later rows).
 
-Why row blocks and not smaller (row block, column block) tiles: BLAS float32 products depend on
-the shape of the call and on the BLAS thread count (measured with OpenBLAS 0.3.31: 3.4% of the
-products of a 256-row block change in the last bit when it is multiplied with 500 instead of
-2744 columns, and an earlier version's demo report AUC changed between 1 and 2 BLAS threads).
-The tasks make the very calls of the single-process plan, each product with one BLAS thread as
-there (tripletkit.metrics.verification runs every block product so), so the report is identical
-to the single-process one computed with the same BLAS build, except ``verification.passes`` (always 2 here; the single-process plan may list the
-refined bins from impostors kept in its first pass) and the timings.
+The scores are exact cosines (:mod:`tripletkit._exact`), so the report is identical to the
+single-process one whatever the workers' BLAS or block shapes, except ``verification.passes``
+(always 2 here; the single-process plan may list the refined bins from impostors kept in its
+first pass) and the timings.
 
 Mining (:func:`mine_on_cluster`)
 --------------------------------
@@ -111,7 +107,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path, check_not_input, check_output
+from ._io import PARQUET_READ, atomic_path, atomic_paths, check_not_input, check_output, parquet_error, parquet_files
 from .config import ComputeConfig
 from .index import SearchIndex, _csr, build_index
 from .table import EmbeddingTable
@@ -300,7 +296,7 @@ def _rows_to_mine(source, path, options):
     if isinstance(source, EmbeddingTable):
         return source.n
     try:
-        rows = sum(pq.ParquetFile(f).metadata.num_rows for f in _files(path))
+        rows = sum(pq.ParquetFile(f, **PARQUET_READ).metadata.num_rows for f in _files(path))
     except (OSError, pa.ArrowException):  # unreadable here: the driver says what is wrong with it
         return None
     # with drop_invalid the valid rows may be fewer: leave the decision to the driver
@@ -315,7 +311,7 @@ def _shards(client, compute):
 
 
 def _thread_limits():
-    """BLAS and OpenMP thread counts of this process, by library (float32 products depend on them)."""
+    """BLAS and OpenMP thread counts of this process, by library (the workers run with the same)."""
     from threadpoolctl import threadpool_info  # faiss, its BLAS and OpenMP are loaded by .index above
 
     return {info["prefix"]: int(info["num_threads"]) for info in threadpool_info()}
@@ -375,25 +371,26 @@ def _read_table(path, options, expect):
 def _files(path):
     """The Parquet files of a table path, in the order :class:`EmbeddingTable` reads them."""
     p = Path(path)
-    if p.is_dir():
-        return sorted(str(f) for f in p.rglob("*.parquet") if f.is_file())
-    return [str(p)]
+    return parquet_files(p) if p.is_dir() else [str(p)]
 
 
 def _read_rows(files, lo, hi):
     """Rows [lo, hi) of the files read one after another, reading only the row groups needed."""
     pieces, start = [], 0
     for f in files:
-        meta = pq.ParquetFile(f).metadata
-        if start + meta.num_rows > lo and start < hi:
-            pf = pq.ParquetFile(f)
-            g0 = start
-            for g in range(meta.num_row_groups):
-                m = meta.row_group(g).num_rows
-                if g0 + m > lo and g0 < hi:
-                    a, b = max(0, lo - g0), min(m, hi - g0)
-                    pieces.append(pf.read_row_group(g).slice(a, b - a).replace_schema_metadata(None))
-                g0 += m
+        try:
+            pf = pq.ParquetFile(f, **PARQUET_READ)
+            meta = pf.metadata
+            if start + meta.num_rows > lo and start < hi:
+                g0 = start
+                for g in range(meta.num_row_groups):
+                    m = meta.row_group(g).num_rows
+                    if g0 + m > lo and g0 < hi:
+                        a, b = max(0, lo - g0), min(m, hi - g0)
+                        pieces.append(pf.read_row_group(g).slice(a, b - a).replace_schema_metadata(None))
+                    g0 += m
+        except (pa.ArrowException, OSError) as exc:
+            raise parquet_error(exc, [f], "part") from None
         start += meta.num_rows
         if start >= hi:
             break
@@ -729,7 +726,7 @@ def _build_sharded(client, files, options, table, parts, folder, cancelled, no_w
             f"index = {kind} is not available with a scheduler; use index = exact (with index = auto, raise "
             "exact_below above the number of rows) or run without a scheduler"
         )
-    counts = [pq.ParquetFile(f).metadata.num_rows for f in files]
+    counts = [pq.ParquetFile(f, **PARQUET_READ).metadata.num_rows for f in files]
     total = int(sum(counts))
     edges = np.linspace(0, total, min(parts, total) + 1).round().astype(np.int64)
     # pure: the same shard gets the same key, so a driver started again finds shards still held
@@ -894,8 +891,9 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
         _say(quiet, "mine", f"on {compute.scheduler} ({workers} workers), gallery in {parts} shards")
         folder = dup_tmp = None
         if out is not None:
-            folder = stack.enter_context(atomic_path(out, force=force, directory=True))
-            dup_tmp = stack.enter_context(atomic_path(dup_out, force=force))
+            # the folder of parts and the duplicate report are published together or not at all
+            folder, dup_tmp = stack.enter_context(atomic_paths([out, dup_out], force=force,
+                                                               directory=[True, False]))
         fut = client.submit(_mine_task, path, options, expect, cfg, None if folder is None else str(folder), parts,
                             int(part_rows), return_triplets, compute.no_workers_timeout,
                             key=f"tripletkit-mine-driver-{uuid.uuid4().hex}")
