@@ -293,7 +293,7 @@ def test_ctrl_c_while_the_command_starts_is_one_line(inputs, tmp_path, entry, af
                              "--out", str(tmp_path / "triplets.parquet")], cwd=tmp_path, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     watcher = _Watcher(proc)
-    assert watcher.wait_for(rf"^import time:.*\| +{re.escape(after)}$", _REACH_SECONDS), watcher.finish()[-5:]
+    assert watcher.wait_for(rf"^import time:.*\| +{re.escape(after)}$", _HANG_SECONDS), watcher.finish()[-5:]
     proc.send_signal(signal.SIGINT)
     lines = watcher.finish()
     own = [line for line in lines if not line.startswith("import time:")]
