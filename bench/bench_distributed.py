@@ -1,4 +1,4 @@
-"""Benchmark of tripletkit.distributed: one process against a 2-worker Dask LocalCluster.
+"""Benchmark of tripletkit.engines.dask: one process against a 2-worker Dask LocalCluster.
 
 Four parts, all on this machine (figures go to docs/benchmarks_distributed.md):
 
@@ -71,7 +71,7 @@ def _inner(tasks):
 
 def write_folder(table, folder, files=8):
     """The table as ``files`` Parquet files (the partitioned dataset the workers read)."""
-    from tripletkit.table import to_arrow
+    from tripletkit.tables.embeddings import to_arrow
 
     folder.mkdir(parents=True)
     arrow = to_arrow(table.ids, table.original_labels(), table.embeddings)
@@ -129,7 +129,7 @@ def part_mine(args, compute, work, res, demo=False):
 
     if demo:
         folder = Path(__file__).resolve().parents[1] / "demo_data" / "train_embeddings.parquet"
-        from tripletkit.table import EmbeddingTable
+        from tripletkit.tables.embeddings import EmbeddingTable
 
         table, work, key = EmbeddingTable.read(folder), work / "demo", "demo"
         work.mkdir()

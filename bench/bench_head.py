@@ -69,8 +69,8 @@ def main():
     args = ap.parse_args()
 
     from tripletkit.config import HeadConfig, MiningConfig
-    from tripletkit.demo import demo_paths
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.scenario import demo_paths
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     head_cfg = HeadConfig(dim=args.head_dim, epochs=args.epochs, seed=0)
     mining_cfg = MiningConfig(regimes=("semi-hard", "hard"), seed=0)

@@ -59,7 +59,7 @@ _FAMILY_SPREAD = 0.9
 
 def make_table(rows, identities, dim, seed=0):
     """Clustered synthetic embeddings: ``identities`` clusters of ``rows // identities`` rows."""
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     per = rows // identities
     rng = np.random.default_rng([seed, 0])
@@ -88,7 +88,7 @@ def make_first_epoch_table(rows, identities, dim, seed=0):
     from bench_head import _synthetic  # bench/ is the script's folder, so it is on sys.path
 
     from tripletkit.head import ProjectionHead
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     labels, F = _synthetic(rows, 128, identities, seed=seed)
     Z = ProjectionHead.initialise(F, dim=dim, seed=seed).transform(F)

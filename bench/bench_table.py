@@ -24,7 +24,7 @@ path, mode = sys.argv[1], sys.argv[2]
 base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 t0 = time.perf_counter()
 if mode == "tripletkit":
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
     t = EmbeddingTable.read(path)
     x = t.embeddings
 else:
@@ -50,7 +50,7 @@ def main():
 
     import numpy as np
 
-    from tripletkit.table import write_table
+    from tripletkit.tables.embeddings import write_table
 
     rng = np.random.default_rng(0)
     with tempfile.TemporaryDirectory() as tmp:

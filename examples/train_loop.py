@@ -1,7 +1,7 @@
 """A template for your own training loop: mine between epochs, score between epochs.
 
 The "model" here is a linear projection W (64 feature values -> ``--dim``) on the frozen feature
-vectors of the demo scenario (an invented grey seal survey; ``tripletkit.demo``). It stands in
+vectors of the demo scenario (an invented grey seal survey; ``tripletkit.scenario``). It stands in
 for your network: wherever this script multiplies by W, your framework runs its forward pass,
 and wherever it applies the gradient, your framework's autograd and optimiser do it.
 
@@ -11,7 +11,7 @@ Each epoch:
 2. mine the triplets of this epoch from those embeddings, in memory
    (``tripletkit.mining.mine((ids, labels, embeddings), return_triplets=True)``);
 3. train on the triplets in minibatches with the triplet loss and its gradient with respect to the
-   raw (pre-normalisation) embeddings (``tripletkit.loss.triplet_loss_grad``), here with Adam
+   raw (pre-normalisation) embeddings (``tripletkit.losses.triplet_loss_grad``), here with Adam
    written out in numpy;
 4. score the held-out seals, identities never trained on
    (``tripletkit.evaluate.score((ids, labels, embeddings))``) and print the equal error rate.
@@ -30,11 +30,11 @@ import time
 import numpy as np
 
 from tripletkit.config import EvaluationConfig, MiningConfig
-from tripletkit.demo import demo_paths
+from tripletkit.scenario import demo_paths
 from tripletkit.evaluate import score
-from tripletkit.loss import triplet_loss_grad
+from tripletkit.losses import triplet_loss_grad
 from tripletkit.mining import mine
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 
 def parse_args(argv=None):

@@ -1,5 +1,11 @@
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
+
+# Shared helpers import as ``from _support import ...`` from every folder of tests/.
+sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 
 @pytest.fixture

@@ -56,7 +56,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError
 from tripletkit.cli import main
-from tripletkit.table import write_table
+from tripletkit.tables.embeddings import write_table
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -686,7 +686,7 @@ def test_warnings_print_as_one_line_each(tmp_path, capsys):
 
 
 def test_memory_error_is_one_line(tmp_path, capsys, monkeypatch):
-    import tripletkit.table as table_module
+    import tripletkit.tables.embeddings as table_module
 
     def boom(*args, **kwargs):
         raise MemoryError("Unable to allocate 74.5 GiB")
@@ -715,7 +715,7 @@ def test_os_error_is_one_line(tmp_path, capsys, monkeypatch):
 
 
 def test_internal_error_is_one_line_exit_1_and_debug_shows_it(tmp_path, capsys, monkeypatch):
-    import tripletkit.table as table_module
+    import tripletkit.tables.embeddings as table_module
 
     monkeypatch.setattr(table_module, "check", lambda *a, **k: [][1])
     src = good(tmp_path)
@@ -742,7 +742,7 @@ def test_closed_stdout_pipe_is_not_an_error(tmp_path):
 # ---------------------------------------------------------------------------------------------
 def test_api_mine_never_overwrites_the_table_it_read(tmp_path):
     from tripletkit.mining import mine
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     src = good(tmp_path)
     before = Path(src).read_bytes()
@@ -788,7 +788,7 @@ def test_effective_dimension_memory_does_not_grow_with_d_squared(rng):
 
 def test_mean_impostor_cosine_is_a_cosine(tmp_path):
     from tripletkit.metrics.health import mean_impostor_cosine
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     # ten copies of one vector of six ones: each unit row is 1/sqrt(6) rounded to float32
     t = EmbeddingTable.from_arrays(np.arange(10), np.repeat(np.arange(5), 2), np.ones((10, 6)))
@@ -852,20 +852,20 @@ def test_two_runs_racing_for_one_output(tmp_path, command):
 
 
 def test_demo_refuses_an_output_folder_that_appears_meanwhile(tmp_path, monkeypatch, capsys):
-    from tripletkit import demo
+    from tripletkit import scenario
 
     out = tmp_path / "demo"
-    stage = demo._stage
+    stage = scenario._stage
 
     def stage_and_race(progress, text):
         stage(progress, text)
         if text.startswith("scoring the held-out"):
             out.mkdir()  # another run's folder, created (empty) while this demo is half way
 
-    monkeypatch.setattr(demo, "_stage", stage_and_race)
+    monkeypatch.setattr(scenario, "_stage", stage_and_race)
     with pytest.raises(TripletkitError, match=r"^output '.*demo' already exists: it appeared while this run was "
                                               r"writing"):
-        demo.run_demo(out, quiet=True, sweep=False)
+        scenario.demo(out, quiet=True, sweep=False)
     assert os.listdir(tmp_path) == ["demo"] and os.listdir(out) == []
 
 
@@ -919,7 +919,7 @@ def test_every_written_parquet_file_carries_page_checksums(tmp_path, which):
         path = tmp_path / "t.duplicates.parquet"
         assert pq.read_table(path).num_rows >= 1
     else:
-        from tripletkit.demo import generate
+        from tripletkit.scenario import generate
 
         path = Path(generate(tmp_path / "demo", seed=7)["heldout_embeddings"])
     _damage_page(path, column=0)

@@ -10,7 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from tripletkit.cli import build_parser, main
-from tripletkit.table import write_table
+from tripletkit.tables.embeddings import write_table
 
 
 @pytest.fixture
@@ -90,8 +90,8 @@ def test_package_exports_the_verbs_as_functions():
 
     import tripletkit
 
-    importlib.import_module("tripletkit.sweep")  # importing the submodule must not shadow the verb
-    for name in ("check", "mine", "score", "sweep", "run_demo", "triplet_loss_report"):
+    importlib.import_module("tripletkit.sweeps")  # importing the submodule must not shadow the verb
+    for name in ("check", "mine", "score", "sweep", "demo", "loss"):
         assert callable(getattr(tripletkit, name)) and not isinstance(getattr(tripletkit, name), type(tripletkit))
 
 

@@ -1,4 +1,4 @@
-"""The invented demo scenario (tripletkit/demo.py) and the shipped demo_data/ tables."""
+"""The invented demo scenario (tripletkit/scenario.py) and the shipped demo_data/ tables."""
 
 import json
 from pathlib import Path
@@ -10,14 +10,14 @@ import pytest
 from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
 from sklearn.metrics import roc_curve
 
-from tripletkit import demo
+from tripletkit import scenario
 from tripletkit._errors import TripletkitError
 
 SHIPPED = Path(__file__).resolve().parent.parent / "demo_data"
 
 
 def _shipped_paths():
-    return {key: SHIPPED / name for key, name in demo.DEMO_FILES.items()}
+    return {key: SHIPPED / name for key, name in scenario.DEMO_FILES.items()}
 
 
 def _read(path):
@@ -66,7 +66,7 @@ def shipped():
 @pytest.fixture(scope="module")
 def regenerated(tmp_path_factory):
     out = tmp_path_factory.mktemp("demo")
-    return demo.generate(out)
+    return scenario.generate(out)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -92,17 +92,17 @@ def test_regeneration_is_byte_identical_to_shipped(regenerated):
 
 
 def test_two_generations_are_byte_identical(regenerated, tmp_path):
-    again = demo.generate(tmp_path)
-    for key in demo.DEMO_FILES:
+    again = scenario.generate(tmp_path)
+    for key in scenario.DEMO_FILES:
         assert Path(again[key]).read_bytes() == Path(regenerated[key]).read_bytes(), key
 
 
 def test_another_seed_draws_another_survey(tmp_path, regenerated):
-    other = demo.generate(tmp_path, seed=demo.DEFAULT_SEED + 1)
+    other = scenario.generate(tmp_path, seed=scenario.DEFAULT_SEED + 1)
     a = _read(other["train_embeddings"])[1]
     b = _read(regenerated["train_embeddings"])[1]
     assert a.shape != b.shape or not np.array_equal(a, b)
-    assert _info(pq.read_table(other["train_embeddings"]))["seed"] == demo.DEFAULT_SEED + 1
+    assert _info(pq.read_table(other["train_embeddings"]))["seed"] == scenario.DEFAULT_SEED + 1
 
 
 # ---------------------------------------------------------------------------------------------
@@ -110,10 +110,10 @@ def test_another_seed_draws_another_survey(tmp_path, regenerated):
 # ---------------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("key", list(demo.DEMO_FILES))
+@pytest.mark.parametrize("key", list(scenario.DEMO_FILES))
 def test_tables_satisfy_the_contract(shipped, key):
     table, matrix, _ = shipped[key]
-    dim = demo.EMBEDDING_DIM if key.endswith("embeddings") else demo.FEATURE_DIM
+    dim = scenario.EMBEDDING_DIM if key.endswith("embeddings") else scenario.FEATURE_DIM
     schema = table.schema
     assert schema.field("id").type == pa.string()
     assert schema.field("label").type == pa.string()
@@ -133,8 +133,8 @@ def test_tables_satisfy_the_contract(shipped, key):
     if key.endswith("embeddings"):
         np.testing.assert_allclose(norms, 1.0, atol=1e-5)
     assert table.column("group").to_pylist() == table.column("site").to_pylist()
-    assert set(table.column("group").to_pylist()) == {name for name, _ in demo.SITES}
-    assert set(table.column("season").to_pylist()) == set(demo.SEASONS)
+    assert set(table.column("group").to_pylist()) == {name for name, _ in scenario.SITES}
+    assert set(table.column("season").to_pylist()) == set(scenario.SEASONS)
 
 
 @pytest.mark.parametrize("split", ["train", "heldout"])
@@ -217,11 +217,11 @@ def test_a_linear_map_fitted_on_training_features_lowers_heldout_eer(shipped):
     _, train_x, train_labels = shipped["train_features"]
     _, held_x, held_labels = shipped["heldout_features"]
     _, held_e, _ = shipped["heldout_embeddings"]
-    lda = LinearDiscriminantAnalysis(n_components=demo.EMBEDDING_DIM).fit(train_x, train_labels)
+    lda = LinearDiscriminantAnalysis(n_components=scenario.EMBEDDING_DIM).fit(train_x, train_labels)
     raw = _eer(held_x, held_labels)
     partial = _eer(held_e, held_labels)
     fitted = _eer(lda.transform(held_x), held_labels)
-    # The scenario's design (demo.py): raw ~ 20 %, partially trained embeddings ~ 10 %, a linear
+    # The scenario's design (scenario.py): raw ~ 20 %, partially trained embeddings ~ 10 %, a linear
     # map that removes the shared nuisance ~ 3 %. Require a clear ordering, not the exact values.
     assert fitted < 0.5 * partial
     assert partial < 0.75 * raw
@@ -232,7 +232,7 @@ def test_sites_differ_in_difficulty(shipped):
     table, matrix, labels = shipped["heldout_embeddings"]
     groups = np.asarray(table.column("group").to_pylist())
     rates = {}
-    for name, _ in demo.SITES:
+    for name, _ in scenario.SITES:
         m = groups == name
         rates[name] = _eer(matrix[m], labels[m])
     assert rates["orrisey-reef"] > rates["vellin-sands"] + 0.02
@@ -244,21 +244,21 @@ def test_sites_differ_in_difficulty(shipped):
 
 
 def test_generate_refuses_to_overwrite_and_writes_nothing(tmp_path):
-    existing = tmp_path / demo.DEMO_FILES["heldout_features"]
+    existing = tmp_path / scenario.DEMO_FILES["heldout_features"]
     existing.write_bytes(b"keep me")
     with pytest.raises(TripletkitError, match="already exists; pass --force") as err:
-        demo.generate(tmp_path)
+        scenario.generate(tmp_path)
     assert "\n" not in str(err.value)
     assert sorted(p.name for p in tmp_path.iterdir()) == [existing.name]
     assert existing.read_bytes() == b"keep me"
-    paths = demo.generate(tmp_path, force=True)
+    paths = scenario.generate(tmp_path, force=True)
     assert pq.read_table(paths["heldout_features"]).num_rows > 0
 
 
 @pytest.mark.parametrize("seed", [-1, 1.5, "7", True])
 def test_generate_rejects_a_bad_seed(tmp_path, seed):
     with pytest.raises(TripletkitError, match="seed must be a non-negative integer"):
-        demo.generate(tmp_path / "out", seed=seed)
+        scenario.generate(tmp_path / "out", seed=seed)
     assert not (tmp_path / "out").exists()
 
 
@@ -266,38 +266,38 @@ def test_generate_rejects_a_file_as_folder(tmp_path):
     target = tmp_path / "not-a-folder"
     target.write_text("x")
     with pytest.raises(TripletkitError, match="is a file, not a folder"):
-        demo.generate(target)
+        scenario.generate(target)
 
 
 def test_generate_leaves_no_temporary_files(tmp_path):
-    demo.generate(tmp_path)
-    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(demo.DEMO_FILES.values())
+    scenario.generate(tmp_path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(scenario.DEMO_FILES.values())
 
 
 def test_demo_paths_finds_the_bundled_folder():
-    paths = demo.demo_paths()
-    assert set(paths) == set(demo.DEMO_FILES)
-    assert all(Path(p).resolve() == (SHIPPED / demo.DEMO_FILES[k]).resolve() for k, p in paths.items())
+    paths = scenario.demo_paths()
+    assert set(paths) == set(scenario.DEMO_FILES)
+    assert all(Path(p).resolve() == (SHIPPED / scenario.DEMO_FILES[k]).resolve() for k, p in paths.items())
 
 
 def test_demo_paths_without_the_bundled_folder(tmp_path, monkeypatch):
-    monkeypatch.setattr(demo, "_bundled_dir", lambda: tmp_path / "no-such-folder")
+    monkeypatch.setattr(scenario, "_bundled_dir", lambda: tmp_path / "no-such-folder")
     with pytest.raises(TripletkitError, match="pass a cache folder"):
-        demo.demo_paths()
+        scenario.demo_paths()
     cache = tmp_path / "cache" / "demo"
-    paths = demo.demo_paths(cache)
+    paths = scenario.demo_paths(cache)
     for key, path in paths.items():
         assert Path(path).parent == cache
-        assert pq.read_table(path).equals(pq.read_table(SHIPPED / demo.DEMO_FILES[key]))
+        assert pq.read_table(path).equals(pq.read_table(SHIPPED / scenario.DEMO_FILES[key]))
     before = {k: Path(p).stat().st_mtime_ns for k, p in paths.items()}
-    again = demo.demo_paths(cache)
+    again = scenario.demo_paths(cache)
     assert {k: Path(p).stat().st_mtime_ns for k, p in again.items()} == before
 
 
 def test_command_line(tmp_path, capsys):
-    assert demo.main(["--regenerate", str(tmp_path)]) == 0
+    assert scenario.main(["--regenerate", str(tmp_path)]) == 0
     assert capsys.readouterr().out.count(".parquet") == 4
-    assert demo.main(["--regenerate", str(tmp_path)]) == 2
+    assert scenario.main(["--regenerate", str(tmp_path)]) == 2
     err = capsys.readouterr().err
     assert err.startswith("error: ") and err.count("\n") == 1
-    assert demo.main(["--regenerate", str(tmp_path), "--force"]) == 0
+    assert scenario.main(["--regenerate", str(tmp_path), "--force"]) == 0

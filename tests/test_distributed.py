@@ -1,4 +1,4 @@
-"""Tests of tripletkit.distributed: mine and score on a 2-worker Dask LocalCluster.
+"""Tests of tripletkit.engines.dask: mine and score on a 2-worker Dask LocalCluster.
 
 Every test compares the cluster run with the single-process run of the same input (the twin):
 the score report must be identical (timings and ``verification.passes`` aside) and the mined
@@ -25,10 +25,10 @@ distributed = pytest.importorskip("distributed")
 
 from tripletkit._errors import TripletkitError  # noqa: E402
 from tripletkit.config import ComputeConfig, EvaluationConfig, MiningConfig  # noqa: E402
-from tripletkit.distributed import _ShardedIndex, mine_on_cluster  # noqa: E402
+from tripletkit.engines.dask import _ShardedIndex, mine_on_cluster  # noqa: E402
 from tripletkit.evaluate import score  # noqa: E402
 from tripletkit.mining import mine  # noqa: E402
-from tripletkit.table import EmbeddingTable, to_arrow  # noqa: E402
+from tripletkit.tables.embeddings import EmbeddingTable, to_arrow  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 TRAIN = ROOT / "demo_data" / "train_embeddings.parquet"
@@ -260,7 +260,7 @@ def test_driver_stops_when_its_client_dies(local, tmp_path):
 
 
 def test_client_error_leaves_no_output(compute, tmp_path, monkeypatch):
-    import tripletkit.distributed as D
+    import tripletkit.engines.dask as D
 
     def boom(*args):
         raise KeyboardInterrupt
@@ -329,7 +329,7 @@ def test_without_a_scheduler_dask_is_never_imported(tmp_path):
         f"evaluate.score({str(HELDOUT)!r}, quiet=True, config=EvaluationConfig(bootstrap=0),"
         " compute=ComputeConfig())\n"
         "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')"
-        " or m == 'tripletkit.distributed')\n"
+        " or m == 'tripletkit.engines.dask')\n"
         "print('imported:', bad)\n"
     )
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
@@ -362,7 +362,7 @@ REFUSED = [
 @pytest.mark.parametrize("verb, options, match", REFUSED, ids=[f"{v}-{'-'.join(o)}" for v, o, _ in REFUSED])
 def test_unsupported_options_are_refused_before_a_cluster_starts(tmp_path, monkeypatch, scheduler, verb, options,
                                                                  match):
-    import tripletkit.distributed as D
+    import tripletkit.engines.dask as D
 
     # no cluster may be started or reached (tcp://127.0.0.1:9 is never a Dask scheduler)
     monkeypatch.setattr(D, "cluster", _no_cluster)
@@ -376,7 +376,7 @@ def test_unsupported_options_are_refused_before_a_cluster_starts(tmp_path, monke
 
 
 def test_auto_index_is_resolved_on_the_rows_of_a_table_object_and_of_a_folder(tmp_path, rng, monkeypatch):
-    import tripletkit.distributed as D
+    import tripletkit.engines.dask as D
 
     monkeypatch.setattr(D, "cluster", _no_cluster)
     compute = ComputeConfig(scheduler="local-cluster")
@@ -391,7 +391,7 @@ def test_auto_index_is_resolved_on_the_rows_of_a_table_object_and_of_a_folder(tm
 
 
 def test_cli_refuses_an_approximate_index_in_one_line(tmp_path, monkeypatch, capsys):
-    import tripletkit.distributed as D
+    import tripletkit.engines.dask as D
     from tripletkit.cli import main
 
     monkeypatch.setattr(D, "cluster", _no_cluster)

@@ -16,7 +16,7 @@ from tripletkit.cli import main
 from tripletkit.config import ComputeConfig, EvaluationConfig, load_config
 from tripletkit.evaluate import score
 from tripletkit.report import CAUTION
-from tripletkit.table import EmbeddingTable, write_table
+from tripletkit.tables.embeddings import EmbeddingTable, write_table
 
 ROOT = Path(__file__).resolve().parents[1]
 TOP_KEYS = ["tripletkit_version", "input", "config", "verification", "retrieval", "clustering", "health",
@@ -446,7 +446,7 @@ import numpy as np
 from tripletkit.config import EvaluationConfig
 from tripletkit.evaluate import score
 from tripletkit.metrics.verification import verify_all_pairs
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 path = sys.argv[1]
 out = {"score": [], "verify": [], "passes": []}

@@ -11,8 +11,8 @@ import pytest
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.config import HeadConfig, MiningConfig
 from tripletkit.head import ProjectionHead, fit_head
-from tripletkit.loss import triplet_loss
-from tripletkit.table import EmbeddingTable
+from tripletkit.losses import triplet_loss
+from tripletkit.tables.embeddings import EmbeddingTable
 
 ALL_REGIMES = MiningConfig(regimes=("easy", "semi-hard", "hard"), positives_per_anchor=3, seed=0)
 
@@ -188,7 +188,7 @@ def _pair_eer(E, labels):
 
 
 def test_demo_head_lowers_heldout_eer_below_raw_features():
-    from tripletkit.demo import demo_paths
+    from tripletkit.scenario import demo_paths
 
     paths = demo_paths()
     train = EmbeddingTable.read(paths["train_features"])

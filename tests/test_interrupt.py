@@ -24,8 +24,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tripletkit.demo import demo_paths
-from tripletkit.table import write_table
+from tripletkit.scenario import demo_paths
+from tripletkit.tables.embeddings import write_table
 
 # A bound on a hang (a child that never reaches its hold or never exits), not on speed: far above
 # what any of these runs takes on a loaded 2-core machine.

@@ -1,4 +1,4 @@
-"""Tests of tripletkit.loss: hand-computed cases, brute-force twins, finite differences, invariances,
+"""Tests of tripletkit.losses: hand-computed cases, brute-force twins, finite differences, invariances,
 and every error message. Checks against outside references live in tests/external/test_loss_reference.py.
 """
 
@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from tripletkit._errors import TripletkitError
-from tripletkit.loss import (
+from tripletkit.losses import (
     DISTANCES,
     REGIMES,
     BatchLoss,
@@ -22,7 +22,7 @@ from tripletkit.loss import (
     triplet_loss,
     triplet_loss_grad,
 )
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 VARIANTS = [(d, s) for d in DISTANCES for s in (False, True)]
 

@@ -238,7 +238,7 @@ def test_estimates_track_traced_allocations(rng, n, d):
     from tripletkit.config import EvaluationConfig, MiningConfig
     from tripletkit.evaluate import score
     from tripletkit.mining import mine
-    from tripletkit.table import EmbeddingTable
+    from tripletkit.tables.embeddings import EmbeddingTable
 
     ids, labels, X = _clusters(rng, n, d)
     table = EmbeddingTable.from_arrays(ids, labels, X)

@@ -19,7 +19,7 @@ from tripletkit.config import MiningConfig, load_config
 from tripletkit.index import exact_cosine, exact_cosine_rows
 from tripletkit.mining import (REGIMES, TRIPLET_COLUMNS, _choose, _count_below, _floyd, _top_in_groups,
                                _uniform, duplicates_path, mine)
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 ALL = ("easy", "semi-hard", "hard")
 
@@ -390,10 +390,11 @@ def test_output_table_and_metadata(seed, tmp_path):
                                 "singletons_skipped", "suspect_duplicates", "index", "recall", "seconds", "out",
                                 "duplicates_out"}
     # the package's triplet reader and loss agree with what was written
-    from tripletkit.triplets import read_triplets, triplet_loss_report
+    from tripletkit.losses import loss
+    from tripletkit.tables.triplets import read_triplets
     ids = read_triplets(out)
     assert np.array_equal(ids["positive"], tr["positive_id"])
-    rep = triplet_loss_report(out, table, margin=0.2)
+    rep = loss(out, table, margin=0.2)
     assert rep["regimes"] == s.regimes | {r: rep["regimes"][r] for r in rep["regimes"] if r not in s.regimes}
     assert rep["active_fraction"] == pytest.approx(s.active_fraction)
 
@@ -530,7 +531,7 @@ def test_string_ids_and_labels(seed, tmp_path):
 
 def test_in_memory_tuple_and_path_sources(seed, tmp_path):
     table = clustered(seed + 15, identities=8, per=5)
-    from tripletkit.table import write_table
+    from tripletkit.tables.embeddings import write_table
     src = tmp_path / "emb.parquet"
     write_table(src, table.ids, table.original_labels(), table.embeddings)
     a = mine(src, quiet=True, return_triplets=True)

@@ -28,10 +28,10 @@ from hypothesis import strategies as st
 from tripletkit._errors import TripletkitError
 from tripletkit.config import MAX_DISTANCE, EvaluationConfig, MiningConfig
 from tripletkit.evaluate import score
-from tripletkit.loss import REGIMES
+from tripletkit.losses import REGIMES
 from tripletkit.metrics.verification import verify_all_pairs
 from tripletkit.mining import mine
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 SETTINGS = dict(derandomize=True, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 # Pairs this close to a regime boundary may fall on either side with another summation order

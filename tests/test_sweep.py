@@ -1,4 +1,4 @@
-"""Tests of tripletkit.sweep: the paired identity bootstrap (brute-force twin of the weighted counts,
+"""Tests of tripletkit.sweeps: the paired identity bootstrap (brute-force twin of the weighted counts,
 identical runs, a clearly better run), both modes end to end, outputs, progress, determinism and
 every config error.
 """
@@ -12,8 +12,8 @@ import pytest
 
 from tripletkit._errors import TripletkitError
 from tripletkit.metrics.verification import count_scores, equal_error_rate, fnmr_at_fmr, verify_all_pairs
-from tripletkit.sweep import _metric, _PairScores, paired_comparison, parse_primary, sweep
-from tripletkit.table import write_table
+from tripletkit.sweeps import _metric, _PairScores, paired_comparison, parse_primary, sweep
+from tripletkit.tables.embeddings import write_table
 
 
 # -- synthetic data (invented, seeded) ---------------------------------------------------------
@@ -366,7 +366,7 @@ def test_command_line(tmp_path, checkpoint_tables, capsys):
 
 
 def test_failure_mid_sweep_leaves_nothing(tmp_path, checkpoint_tables, monkeypatch):
-    sw = importlib.import_module("tripletkit.sweep")  # the module; tripletkit.sweep is the verb
+    sw = importlib.import_module("tripletkit.sweeps")  # the module; tripletkit.sweeps is the verb
 
     def boom(*args, **kwargs):
         raise KeyboardInterrupt
@@ -425,7 +425,7 @@ def test_config_errors_one_line_no_output(tmp_path, feature_tables, text, match)
 
 
 def test_held_out_set_too_large_for_the_paired_comparison(tmp_path, feature_tables, monkeypatch):
-    sw = importlib.import_module("tripletkit.sweep")  # the module; tripletkit.sweep is the verb
+    sw = importlib.import_module("tripletkit.sweeps")  # the module; tripletkit.sweeps is the verb
 
     monkeypatch.setattr(sw, "MAX_PAIRS", 1000)  # the held-out table has 80 rows, 3160 pairs
     with pytest.raises(TripletkitError, match=r"80 held-out rows make 3160 pairs; .* at most 1000"):

@@ -10,7 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from tripletkit import TripletkitError
-from tripletkit.table import EmbeddingTable, as_table, check, to_arrow, write_table
+from tripletkit.tables.embeddings import EmbeddingTable, as_table, check, to_arrow, write_table
 
 
 def _write(path, table):

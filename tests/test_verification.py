@@ -11,7 +11,7 @@ import pytest
 from tripletkit._errors import TripletkitError, TripletkitWarning
 import tripletkit.metrics.verification as V
 from tripletkit._exact import snap
-from _lattice import four_squares as _four_squares
+from _support import four_squares as _four_squares
 
 
 def exact_table(rng, n, k, d=12, spread=12, scale=64):

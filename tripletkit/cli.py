@@ -187,17 +187,17 @@ def _compute(args):
 def _run(args):
     """Dispatch one parsed command; return the object to print."""
     if args.command == "check":
-        from .table import check
+        from .tables.embeddings import check
 
         return check(args.table, **_table_kwargs(args))
     if args.command == "loss":
-        from .triplets import triplet_loss_report
+        from .losses import loss
 
-        return triplet_loss_report(args.triplets, args.table, margin=args.margin, distance=args.distance,
+        return loss(args.triplets, args.table, margin=args.margin, distance=args.distance,
                                    soft=args.soft, table_options=_table_kwargs(args))
     if args.command == "mine":
         from .mining import duplicates_path, mine
-        from .table import EmbeddingTable, require_pairs
+        from .tables.embeddings import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)
@@ -213,7 +213,7 @@ def _run(args):
                     table_options=_table_kwargs(args), **kwargs)
     if args.command == "score":
         from .evaluate import score
-        from .table import EmbeddingTable, require_pairs
+        from .tables.embeddings import EmbeddingTable, require_pairs
 
         cfg = _load_section(args, "evaluation", EvaluationConfig)
         compute = _compute(args)
@@ -228,13 +228,13 @@ def _run(args):
         return score(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
                      table_options=_table_kwargs(args))
     if args.command == "sweep":
-        from .sweep import sweep
+        from .sweeps import sweep
 
         return sweep(args.config, out=args.out, force=args.force, quiet=args.quiet)
     if args.command == "demo":
-        from .demo import run_demo
+        from .scenario import demo
 
-        return run_demo(args.out, force=args.force, quiet=args.quiet)
+        return demo(args.out, force=args.force, quiet=args.quiet)
     raise AssertionError(args.command)  # argparse guarantees a known command
 
 

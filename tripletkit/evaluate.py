@@ -29,9 +29,10 @@ import numpy as np
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path, check_not_input, check_output, read_parquet
 from .config import EvaluationConfig
-from .table import as_table, source_path
+from .tables.embeddings import as_table, source_path
+from .tables.pairs import read_pair_list
 
-__all__ = ["score", "read_pair_list"]
+__all__ = ["score"]
 
 # Prefixes of the RuntimeWarnings that the metric functions issue for degenerate input.
 _METRIC_WARNINGS = ("verification:", "retrieval:", "clustering:", "health:")
@@ -40,92 +41,6 @@ _METRIC_WARNINGS = ("verification:", "retrieval:", "clustering:", "health:")
 def _say(quiet, text):
     if not quiet:
         print(f"[score] {text}", file=sys.stderr, flush=True)
-
-
-# ---------------------------------------------------------------------------------------------
-# the pair list
-# ---------------------------------------------------------------------------------------------
-def _show(v):
-    return repr(v.item() if isinstance(v, np.generic) else v)
-
-
-def read_pair_list(path, table):
-    """Read a Parquet pair list and map its ids to row positions of ``table``.
-
-    Parameters
-    ----------
-    path : str or Path
-        Parquet file with columns ``left`` and ``right`` (ids of ``table``) and optionally
-        ``same`` (boolean: whether the protocol says the pair is genuine).
-    table : EmbeddingTable
-
-    Returns
-    -------
-    left, right : ndarray of int64, shape (p,)
-        Row positions.
-    same : ndarray of bool, shape (p,) or None
-        The ``same`` column, already checked against the labels.
-
-    Raises
-    ------
-    TripletkitError
-        A missing file or column, nulls, an id that is not in the table, a row paired with
-        itself, or a ``same`` value that disagrees with the labels (naming the first such pair).
-    """
-    import pyarrow as pa
-
-    p = Path(path)
-    if not p.is_file():
-        raise TripletkitError(f"pair list {str(p)!r} does not exist; check the path given as pairs")
-    pairs = read_parquet(p, "pair list")
-    missing = [c for c in ("left", "right") if c not in pairs.column_names]
-    if missing:
-        raise TripletkitError(
-            f"pair list {str(p)!r} has no column {missing[0]!r} (columns: {', '.join(pairs.column_names)}); "
-            "it needs 'left' and 'right' ids and optionally a boolean 'same'"
-        )
-    if pairs.num_rows == 0:
-        raise TripletkitError(f"pair list {str(p)!r} holds no pairs; give at least one (left, right) row")
-    cols = {}
-    for name in ("left", "right") + (("same",) if "same" in pairs.column_names else ()):
-        col = pairs.column(name)
-        if pa.types.is_dictionary(col.type):
-            col = col.cast(col.type.value_type)
-        if col.null_count:
-            first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
-            raise TripletkitError(
-                f"pair list {str(p)!r} column {name!r} has {col.null_count} null values (first at row {first}); "
-                "every pair needs both ids" + (" and a same value" if name == "same" else "")
-            )
-        cols[name] = col
-    if "same" in cols and not pa.types.is_boolean(cols["same"].type):
-        raise TripletkitError(
-            f"pair list {str(p)!r} column 'same' has type {cols['same'].type}; expected boolean (true = same identity)"
-        )
-    left_ids = cols["left"].to_numpy(zero_copy_only=False)
-    right_ids = cols["right"].to_numpy(zero_copy_only=False)
-    left = table.positions(left_ids, what=f"'left' ids of pair list {str(p)!r}")
-    right = table.positions(right_ids, what=f"'right' ids of pair list {str(p)!r}")
-    selfpair = left == right
-    if selfpair.any():
-        i = int(np.flatnonzero(selfpair)[0])
-        raise TripletkitError(
-            f"pair list {str(p)!r} row {i} pairs id {_show(left_ids[i])} with itself; every pair needs two rows"
-        )
-    same = None
-    if "same" in cols:
-        same = cols["same"].to_numpy(zero_copy_only=False).astype(bool)
-        truth = table.labels[left] == table.labels[right]
-        wrong = same != truth
-        if wrong.any():
-            i = int(np.flatnonzero(wrong)[0])
-            la, lb = table.label_values[table.labels[left[i]]], table.label_values[table.labels[right[i]]]
-            raise TripletkitError(
-                f"pair list {str(p)!r} row {i} (left {_show(left_ids[i])}, right {_show(right_ids[i])}) says "
-                f"same={bool(same[i])} but their labels are {_show(la)} and {_show(lb)}; {int(wrong.sum())} pairs "
-                "disagree with the labels; fix the pair list or the table"
-            )
-    return left, right, same
 
 
 # ---------------------------------------------------------------------------------------------
@@ -295,7 +210,7 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
             f"config must be an EvaluationConfig (the [evaluation] section), got {type(config).__name__}"
         )
     if compute is not None and getattr(compute, "scheduler", None) is not None:
-        from .distributed import score_on_cluster
+        from .engines.dask import score_on_cluster
 
         return score_on_cluster(source, out, config=config, force=force, quiet=quiet,
                                 table_options=table_options, compute=compute)

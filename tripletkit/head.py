@@ -46,7 +46,7 @@ from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path
 from ._validate import as_embeddings, row_norms
 from .config import HeadConfig, MiningConfig, check_margin
-from .loss import REGIMES, triplet_loss, triplet_loss_grad
+from .losses import REGIMES, triplet_loss, triplet_loss_grad
 
 __all__ = ["ProjectionHead", "fit_head", "HeadDiverged"]
 
@@ -495,7 +495,7 @@ def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet
     mining, as between epochs of a framework training loop), shuffled with the head's seed and cut
     into minibatches of ``batch_triplets``. An epoch that mines no triplet makes no update.
     """
-    from .table import as_table
+    from .tables.embeddings import as_table
 
     head_config = HeadConfig() if head_config is None else head_config
     mining_config = MiningConfig() if mining_config is None else mining_config

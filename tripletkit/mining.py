@@ -104,8 +104,8 @@ from ._io import PARQUET_WRITE, atomic_paths, check_output
 from .config import MiningConfig, override
 from .index import (build_index, estimate_recall, exact_cosine, exact_cosine_rows, exact_scores,
                     faiss_threads, query_block_rows, resolve_kind)
-from .loss import REGIMES, regime_codes
-from .table import EmbeddingTable, as_table, source_path
+from .losses import REGIMES, regime_codes
+from .tables.embeddings import EmbeddingTable, as_table, source_path
 
 __all__ = ["mine", "MiningSummary", "REGIMES", "TRIPLET_COLUMNS", "DUPLICATE_COLUMNS",
            "distance_log_weights", "duplicates_path", "triplet_schema"]
@@ -1253,7 +1253,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     t0 = time.perf_counter()
     cfg = _config(config, options)
     if compute is not None and compute.scheduler is not None:
-        from .distributed import mine_on_cluster  # its output is a folder, checked there
+        from .engines.dask import mine_on_cluster  # its output is a folder, checked there
 
         return mine_on_cluster(source, out, config=cfg, compute=compute, force=force, quiet=quiet,
                                return_triplets=return_triplets, table_options=table_options)

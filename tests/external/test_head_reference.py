@@ -30,7 +30,7 @@ from sklearn.neighbors import NeighborhoodComponentsAnalysis
 from tripletkit.config import HeadConfig, MiningConfig
 from tripletkit.head import fit_head
 from tripletkit.metrics.verification import verify_all_pairs
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 SPLIT_SEED = 0  # fixed random_state of the stratified split
 MINING = MiningConfig(regimes=("semi-hard", "hard"), seed=0)

@@ -1,4 +1,4 @@
-"""tripletkit.loss against outside references: the published loss definitions, scipy and
+"""tripletkit.losses against outside references: the published loss definitions, scipy and
 scikit-learn implementations of the pieces, and a dataset bundled with scikit-learn.
 
 Each test names its source in a comment.
@@ -18,7 +18,7 @@ from sklearn.metrics.pairwise import (
 )
 from sklearn.preprocessing import normalize
 
-from tripletkit.loss import (
+from tripletkit.losses import (
     batch_all_loss,
     batch_hard_loss,
     pair_distance,

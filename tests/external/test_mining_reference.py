@@ -15,7 +15,7 @@ from sklearn.neighbors import NearestNeighbors
 
 from tripletkit.index import build_index
 from tripletkit.mining import REGIMES, _choose, distance_log_weights, mine
-from tripletkit.table import EmbeddingTable
+from tripletkit.tables.embeddings import EmbeddingTable
 
 
 @pytest.fixture

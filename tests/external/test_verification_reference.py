@@ -9,7 +9,7 @@ from scipy.stats import mannwhitneyu
 from sklearn.metrics import det_curve, roc_auc_score, roc_curve
 
 import tripletkit.metrics.verification as V
-from _lattice import four_squares as _four_squares
+from _support import four_squares as _four_squares
 
 
 def exact_table(rng, n, k, d, centre, spread, scale):

@@ -74,9 +74,9 @@ from ._errors import TripletkitError, TripletkitWarning
 from ._exact import snap
 from ._io import atomic_path, check_not_input, check_output, jsonable
 from .config import load_config
-from .loss import REGIMES
+from .losses import REGIMES
 from .report import CAUTION
-from .table import EmbeddingTable, require_pairs
+from .tables.embeddings import EmbeddingTable, require_pairs
 
 __all__ = ["sweep", "paired_comparison", "parse_primary"]
 

@@ -106,11 +106,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ._errors import TripletkitError, TripletkitWarning
-from ._io import PARQUET_READ, atomic_path, atomic_paths, check_not_input, check_output, parquet_error, parquet_files
-from .config import ComputeConfig
-from .index import SearchIndex, _csr, build_index
-from .table import EmbeddingTable
+from .._errors import TripletkitError, TripletkitWarning
+from .._io import PARQUET_READ, atomic_path, atomic_paths, check_not_input, check_output, parquet_error, parquet_files
+from ..config import ComputeConfig
+from ..index import SearchIndex, _csr, build_index
+from ..tables.embeddings import EmbeddingTable
 
 __all__ = ["LOCAL_CLUSTER", "PART_ROWS", "cluster", "mine_on_cluster", "score_on_cluster"]
 
@@ -268,7 +268,7 @@ def _refuse_unsupported(what, config, rows=None):
     ``what`` is ``"mine"`` or ``"score"``; ``rows`` is the row count ``index = auto`` resolves
     on (None: unknown, and the driver refuses an approximate index itself when it resolves to one).
     """
-    from .index import resolve_kind
+    from ..index import resolve_kind
 
     if what == "mine":
         kind = config.index
@@ -414,7 +414,7 @@ def _cost_groups(blocks, parts):
 
 
 def _count_task(xs, codes, gcodes, b, starts, limits):
-    from .metrics import verification
+    from ..metrics import verification
 
     blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
     with _limits(limits):
@@ -422,7 +422,7 @@ def _count_task(xs, codes, gcodes, b, starts, limits):
 
 
 def _refine_task(xs, codes, gcodes, b, starts, args, chunk, use_table, limits):
-    from .metrics import verification
+    from ..metrics import verification
 
     blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
     ref = verification._Refiner(*args)
@@ -485,7 +485,7 @@ class _BlockRunner:
             if g is not None:
                 ggrps.append(g)
         del futs, parts
-        from .metrics.verification import _genuine_arrays
+        from ..metrics.verification import _genuine_arrays
 
         return (hist, *_genuine_arrays(gvals, gids, ggrps))
 
@@ -504,8 +504,8 @@ class _BlockRunner:
 def _score_task(path, options, expect, config, limits, parts, no_workers_timeout):
     from distributed import worker_client
 
-    from .evaluate import score
-    from .metrics.verification import block_runner
+    from ..evaluate import score
+    from ..metrics.verification import block_runner
 
     cancelled = _watch_driver()
     table = _read_table(path, options, expect)
@@ -537,8 +537,8 @@ def score_on_cluster(source, out=None, *, config=None, compute, force=False, qui
         ``seconds`` and ``stage_seconds`` when the workers run the same BLAS build on the same
         CPU type (see the module notes).
     """
-    from .config import EvaluationConfig
-    from .report import write_report
+    from ..config import EvaluationConfig
+    from ..report import write_report
 
     t0 = time.perf_counter()
     config = EvaluationConfig() if config is None else config
@@ -751,7 +751,7 @@ class _PartWriter:
     ``part_rows`` triplets each (a multiple of the row group size), rows in the single file's order."""
 
     def __init__(self, folder, table, metadata, part_rows=PART_ROWS):
-        from .mining import _TripletWriter
+        from ..mining import _TripletWriter
 
         self._writer_class = _TripletWriter
         self.folder = None if folder is None else Path(folder)
@@ -798,7 +798,7 @@ class _PartWriter:
 def _mine_task(path, options, expect, config, folder, parts, part_rows, return_triplets, no_workers_timeout):
     from distributed import worker_client
 
-    from .mining import _mine_table
+    from ..mining import _mine_table
 
     t0, c0 = time.perf_counter(), time.thread_time()
     cancelled = _watch_driver()
@@ -867,7 +867,7 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
     MiningSummary
         As in one process; ``details`` adds ``shards``, ``parts`` and ``scheduler``.
     """
-    from .mining import MiningConfig, _config, duplicates_path
+    from ..mining import MiningConfig, _config, duplicates_path
 
     t0 = time.perf_counter()
     cfg = _config(config, {})

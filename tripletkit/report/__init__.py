@@ -21,8 +21,8 @@ import json
 import math
 from pathlib import Path
 
-from ._errors import TripletkitError
-from ._io import jsonable
+from .._errors import TripletkitError
+from .._io import jsonable
 
 __all__ = ["CAUTION", "write_report", "render_markdown", "plot_roc_det", "plot_score_histogram"]
 

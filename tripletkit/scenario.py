@@ -56,7 +56,7 @@ __all__ = [
     "EMBEDDING_DIM",
     "generate",
     "demo_paths",
-    "run_demo",
+    "demo",
     "main",
 ]
 
@@ -396,7 +396,7 @@ def generate(out_dir, seed=DEFAULT_SEED, force=False):
 
 
 def _bundled_dir():
-    # The repository layout: tripletkit/demo.py next to demo_data/.
+    # The repository layout: tripletkit/scenario.py next to demo_data/.
     return Path(__file__).resolve().parent.parent / "demo_data"
 
 
@@ -463,7 +463,7 @@ def _stage(progress, text):
         print(f"[demo] {text}", file=sys.stderr, flush=True)
 
 
-def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
+def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
     """Run the loop on the demo data: check, mine, loss, score and a fit-head margin sweep.
 
     Everything is written inside ``out`` (created atomically: an interrupted demo leaves nothing):
@@ -490,8 +490,8 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
     from .config import EvaluationConfig, MiningConfig
     from .evaluate import score
     from .mining import mine
-    from .table import check
-    from .triplets import triplet_loss_report
+    from .tables.embeddings import check
+    from .losses import loss
 
     out = Path(out)
     progress = not quiet
@@ -510,7 +510,7 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
         summary["mine"] = {k: v for k, v in jsonable(mined).items() if k not in ("out", "duplicates_out")}
 
         _stage(progress, "scoring the mined triplets (loss)")
-        summary["loss"] = triplet_loss_report(tmp / "triplets.parquet", data["train_embeddings"],
+        summary["loss"] = loss(tmp / "triplets.parquet", data["train_embeddings"],
                                               margin=mining_cfg.margin)
         (tmp / "loss.json").write_text(json.dumps(jsonable(summary["loss"]), indent=2))
 
@@ -527,7 +527,7 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
             cfg_path = tmp / "sweep.toml"
             cfg_path.write_text(DEMO_SWEEP_TOML.format(train=Path(data["train_features"]).resolve(),
                                                        heldout=Path(data["heldout_features"]).resolve()))
-            from .sweep import sweep as run_sweep
+            from .sweeps import sweep as run_sweep
 
             result = run_sweep(cfg_path, out=tmp / "sweep", quiet=quiet)
             # sweep.json names its config by the path it was given: the temporary folder's, which
@@ -551,9 +551,9 @@ def run_demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
 
 
 def main(argv=None):
-    """``python -m tripletkit.demo --regenerate DIR [--seed N] [--force]``; returns an exit code."""
+    """``python -m tripletkit.scenario --regenerate DIR [--seed N] [--force]``; returns an exit code."""
     parser = argparse.ArgumentParser(
-        prog="python -m tripletkit.demo",
+        prog="python -m tripletkit.scenario",
         description="Regenerate the invented seal re-identification demo tables byte for byte.",
     )
     parser.add_argument(

@@ -16,9 +16,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ._errors import TripletkitError
-from ._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
-from ._validate import float32_rows
+from .._errors import TripletkitError
+from .._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
+from .._validate import float32_rows
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
            "pair_problems", "id_array"]

@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
@@ -59,6 +60,7 @@ __all__ = [
     "batch_all_loss",
     "batch_hard_loss",
     "score_triplets",
+    "loss",
 ]
 
 #: Regime names, in code order: ``regime_codes`` returns int8 indices into this tuple.
@@ -694,3 +696,35 @@ def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, di
 def _unit64(rows):
     x = rows.astype(np.float64)
     return x / np.sqrt(np.einsum("ij,ij->i", x, x))[:, None]
+
+
+# -- public: the `loss` verb ------------------------------------------------------------------
+def loss(triplets, table, *, margin=0.2, distance="squared", soft=False, table_options=None):
+    """Mean loss, active fraction and regime counts of a triplet table on an embedding table.
+
+    Parameters
+    ----------
+    triplets : str, Path or dict
+        A triplet table path, or a dict with ``anchor``, ``positive``, ``negative`` id arrays.
+    table : str, Path, EmbeddingTable or (ids, labels, embeddings)
+        The embeddings the ids refer to.
+    margin, distance, soft
+        As in :func:`triplet_loss`.
+
+    Returns
+    -------
+    dict
+        Keys ``triplets``, ``mean_loss``, ``active_fraction``, ``regimes``.
+    """
+    from .config import MAX_DISTANCE, check_margin
+    from .tables.embeddings import as_table
+    from .tables.triplets import read_triplets
+
+    if not soft and distance in MAX_DISTANCE and isinstance(margin, (int, float)):
+        check_margin(margin, distance, "margin")
+    trip = read_triplets(triplets) if isinstance(triplets, (str, Path)) else triplets
+    emb = as_table(table, **(table_options or {}))
+    if len(trip["anchor"]) == 0:
+        raise TripletkitError("the triplet table has no rows; there is nothing to score")
+    return score_triplets(emb, np.asarray(trip["anchor"]), np.asarray(trip["positive"]),
+                          np.asarray(trip["negative"]), margin=margin, distance=distance, soft=soft)
