@@ -26,7 +26,8 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from tripletkit._errors import TripletkitError
-from tripletkit.config import MAX_DISTANCE, EvaluationConfig, MiningConfig
+from tripletkit._validate import MAX_DISTANCE
+from tripletkit.config import EvaluationConfig, MiningConfig
 from tripletkit.evaluate import score
 from tripletkit.losses import REGIMES
 from tripletkit.metrics.verification import verify_all_pairs

@@ -16,6 +16,7 @@ import errno
 import math
 import os
 import shutil
+import sys
 import tempfile
 from pathlib import Path
 
@@ -23,7 +24,7 @@ from ._errors import TripletkitError
 
 __all__ = ["atomic_path", "atomic_paths", "check_output", "check_not_input", "jsonable", "PARQUET_WRITE",
            "PARQUET_READ", "parquet_files", "read_parquet", "read_parquet_schema", "read_parquet_files",
-           "parquet_error"]
+           "parquet_error", "say"]
 
 
 def _inside(inner, outer):
@@ -470,3 +471,9 @@ def jsonable(obj):
     if isinstance(obj, float) and not math.isfinite(obj):
         return None
     return obj
+
+
+def say(verb, text, quiet=False):
+    """Print one progress line ``[verb] text`` on stderr, unless ``quiet``."""
+    if not quiet:
+        print(f"[{verb}] {text}", file=sys.stderr, flush=True)

@@ -9,7 +9,16 @@ import numpy as np
 
 from ._errors import TripletkitError
 
-__all__ = ["as_embeddings", "as_codes", "check_same_length", "l2_normalise", "float32_rows", "row_norms"]
+__all__ = ["as_embeddings", "as_codes", "check_same_length", "l2_normalise", "float32_rows", "row_norms",
+           "UNIT_NORM_TOLERANCE", "MAX_DISTANCE", "DISTANCES", "check_unit", "check_margin", "check_distance",
+           "whole_number", "check_choice", "check_flag"]
+
+#: Rows whose L2 norm is within this of 1 count as unit rows.
+UNIT_NORM_TOLERANCE = 1e-3
+#: Distances between unit vectors.
+DISTANCES = ("squared", "euclidean")
+#: The largest distance between two unit vectors: ||a - b||^2 <= 4 (squared), ||a - b|| <= 2 (euclidean).
+MAX_DISTANCE = {"squared": 4.0, "euclidean": 2.0}
 
 _F32_MAX = float(np.finfo(np.float32).max)
 _F32_TINY = float(np.finfo(np.float32).tiny)  # the smallest normal float32
@@ -159,3 +168,79 @@ def check_same_length(**arrays):
     if len(set(lengths.values())) > 1:
         desc = ", ".join(f"{k}={v}" for k, v in lengths.items())
         raise TripletkitError(f"inputs must have the same number of rows, got {desc}")
+
+
+# -- scalars and options ------------------------------------------------------------------------
+def check_unit(x, name="embeddings"):
+    """Refuse rows whose L2 norm is not 1 within :data:`UNIT_NORM_TOLERANCE`."""
+    norms = np.sqrt(np.einsum("ij,ij->i", x, x, dtype=np.float64))
+    bad = np.abs(norms - 1.0) > UNIT_NORM_TOLERANCE
+    if bad.any():
+        first = np.flatnonzero(bad)[:5].tolist()
+        raise TripletkitError(
+            f"{name} has {int(bad.sum())} rows whose L2 norm is not 1 (first row positions: {first}); "
+            "L2-normalise the embeddings first (scores are cosine similarities of unit vectors)"
+        )
+
+
+def check_margin(margin, distance, where="margin"):
+    """Refuse a margin that no pair of unit vectors can reach under ``distance``.
+
+    With margin alpha >= the largest distance D, d_an >= d_ap + alpha would need d_an >= D with
+    d_ap = 0: no triplet is ever easy and every one is active, so the margin cannot be what was
+    meant. ``where`` names the key or option in the message.
+    """
+    top = MAX_DISTANCE[distance]
+    if margin >= top:
+        raise TripletkitError(
+            f"{where} = {margin!r} cannot be reached with distance = {distance}: distances between unit vectors "
+            f"lie in [0, {top:g}], so the margin must lie in (0, {top:g})"
+        )
+
+
+def check_distance(distance, name="distance"):
+    """``distance`` if it is one of :data:`DISTANCES`."""
+    if not isinstance(distance, str) or distance not in DISTANCES:
+        raise TripletkitError(f"{name} must be 'squared' or 'euclidean', got {distance!r}; pick one of those two")
+    return distance
+
+
+def whole_number(value, name, low=0, allow_none=False):
+    """``value`` as an int if it is a whole number >= ``low`` (booleans refused), else an error."""
+    if value is None and allow_none:
+        return None
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < low:
+        raise TripletkitError(f"{name} must be a whole number >= {low}, got {value!r}")
+    return int(value)
+
+
+def check_choice(value, name, choices):
+    """``value`` if it is one of ``choices``, else an error listing them."""
+    if not isinstance(value, str) or value not in choices:
+        allowed = ", ".join(repr(c) for c in choices)
+        raise TripletkitError(f"{name} must be one of {allowed}, got {value!r}")
+    return value
+
+
+def check_flag(value, name):
+    """``value`` as a bool if it is True or False."""
+    if not isinstance(value, (bool, np.bool_)):
+        raise TripletkitError(f"{name} must be True or False, got {value!r}")
+    return bool(value)
+
+
+# -- checks of mining (added by the mining room) ------------------------------------------------
+#
+#
+#
+#
+#
+#
+# -- checks of metrics (added by the metrics room) ----------------------------------------------
+#
+#
+#
+#
+#
+#
+# -- checks of reports and sweeps (added by the report room) ------------------------------------

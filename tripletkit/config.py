@@ -21,29 +21,10 @@ from ._errors import TripletkitError
 
 __all__ = [
     "MiningConfig", "EvaluationConfig", "SweepConfig", "SweepRun", "HeadConfig", "DataConfig",
-    "ComputeConfig", "Config", "load_config", "section_from_dict", "override", "check_margin", "MAX_DISTANCE",
+    "ComputeConfig", "Config", "load_config", "section_from_dict", "override",
 ]
 
 REGIME_NAMES = ("easy", "semi-hard", "hard")
-
-
-#: The largest distance between two unit vectors: ||a - b||^2 <= 4 (squared), ||a - b|| <= 2 (euclidean).
-MAX_DISTANCE = {"squared": 4.0, "euclidean": 2.0}
-
-
-def check_margin(margin, distance, where="margin"):
-    """Refuse a margin that no pair of unit vectors can reach under ``distance``.
-
-    With margin alpha >= the largest distance D, d_an >= d_ap + alpha would need d_an >= D with
-    d_ap = 0: no triplet is ever easy and every one is active, so the margin cannot be what was
-    meant. ``where`` names the key or option in the message.
-    """
-    top = MAX_DISTANCE[distance]
-    if margin >= top:
-        raise TripletkitError(
-            f"{where} = {margin!r} cannot be reached with distance = {distance}: distances between unit vectors "
-            f"lie in [0, {top:g}], so the margin must lie in (0, {top:g})"
-        )
 
 
 def _opt(default, help, **checks):
@@ -291,7 +272,7 @@ def section_from_dict(cls, values, where, base=None, section=None):
             raise TripletkitError(f"{where}: key {name!r} is required")
     out = cls(**kwargs)
     if cls is MiningConfig:
-        check_margin(out.margin, out.distance, f"{where}.margin")
+        _reach(out.margin, out.distance, f"{where}.margin")
     return out
 
 
@@ -320,9 +301,9 @@ def load_config(path):
     # a sweep mines and trains with its margins under the [mining] distance
     distance = config.mining.distance
     for i, margin in enumerate(config.sweep.margins or ()):
-        check_margin(margin, distance, f"{p} [sweep].margins[{i}]")
+        _reach(margin, distance, f"{p} [sweep].margins[{i}]")
     for i, run in enumerate(config.sweep.runs):
-        check_margin(run.margin, distance, f"{p} [sweep].runs[{i}].margin")
+        _reach(run.margin, distance, f"{p} [sweep].runs[{i}].margin")
     return config
 
 
@@ -357,10 +338,17 @@ def override(section, where="option", **values):
                 f"{cls.__name__}.{key}", None)
     out = dataclasses.replace(section, **changes)
     if cls is MiningConfig:
-        check_margin(out.margin, out.distance, _option("margin") if "margin" in changes else
+        _reach(out.margin, out.distance, _option("margin") if "margin" in changes else
                      "margin" if "distance" in changes else f"{cls.__name__}.margin")
     return out
 
 
 def _option(key):
     return f"--{key.replace('_', '-')}"
+
+
+def _reach(margin, distance, where):
+    """:func:`tripletkit._validate.check_margin`, imported on use (configs are read before numpy loads)."""
+    from ._validate import check_margin
+
+    check_margin(margin, distance, where)

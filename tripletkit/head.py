@@ -45,7 +45,8 @@ import numpy as np
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path
 from ._validate import as_embeddings, row_norms
-from .config import HeadConfig, MiningConfig, check_margin
+from ._validate import check_margin
+from .config import HeadConfig, MiningConfig
 from .losses import REGIMES, triplet_loss, triplet_loss_grad
 
 __all__ = ["ProjectionHead", "fit_head", "HeadDiverged"]

@@ -716,7 +716,7 @@ def loss(triplets, table, *, margin=0.2, distance="squared", soft=False, table_o
     dict
         Keys ``triplets``, ``mean_loss``, ``active_fraction``, ``regimes``.
     """
-    from .config import MAX_DISTANCE, check_margin
+    from ._validate import MAX_DISTANCE, check_margin
     from .tables.embeddings import as_table
     from .tables.triplets import read_triplets
 

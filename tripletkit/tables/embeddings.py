@@ -18,13 +18,11 @@ import pyarrow.parquet as pq
 
 from .._errors import TripletkitError
 from .._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
-from .._validate import float32_rows
+from .._validate import UNIT_NORM_TOLERANCE, float32_rows
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
            "pair_problems", "id_array"]
 
-#: Norms within this distance of 1 count as "already unit length".
-UNIT_NORM_TOLERANCE = 1e-3
 #: Rows processed at once in the finiteness / norm pass (bounds the temporary memory).
 _ROW_BLOCK = 65536
 
