@@ -18,23 +18,15 @@ import pyarrow.parquet as pq
 
 from .._errors import TripletkitError
 from .._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
-from .._validate import UNIT_NORM_TOLERANCE, float32_rows
+from .._validate import UNIT_NORM_TOLERANCE
+from .columns import (as_float32, embedding_matrix, first_duplicate, first_ids, group_values, id_array,
+                      key_values, plain)
 
 __all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
            "pair_problems", "id_array"]
 
 #: Rows processed at once in the finiteness / norm pass (bounds the temporary memory).
 _ROW_BLOCK = 65536
-
-
-def _first(ids, mask, k=5):
-    """The first ``k`` ids where ``mask`` holds, formatted for a message."""
-    pos = np.flatnonzero(mask)[:k]
-    return ", ".join(repr(_py(ids[p])) for p in pos)
-
-
-def _py(v):
-    return v.item() if isinstance(v, np.generic) else v
 
 
 class _EveryRowInvalid(TripletkitError):
@@ -119,15 +111,15 @@ class EmbeddingTable:
                 )
         if table.num_rows == 0:
             raise TripletkitError(f"table{where} has no rows; is it the right file?")
-        ids = _key_column(table.column(id_column), id_column, "id", where)
+        ids = key_values(table.column(id_column), id_column, "id", where)
         if len(pc.unique(table.column(id_column))) != table.num_rows:
-            dup = _first_duplicate(ids)
+            dup = first_duplicate(ids)
             raise TripletkitError(f"id column {id_column!r}{where} has duplicate ids (first: {dup!r}); ids must be unique")
-        labels = _key_column(table.column(label_column), label_column, "label", where)
-        emb, rescaled = _embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
+        labels = key_values(table.column(label_column), label_column, "label", where)
+        emb, rescaled = embedding_matrix(table.column(embedding_column), embedding_column, ids, where)
         groups = None
         if group_column and group_column in names:
-            groups = _group_column(table.column(group_column), group_column, where)
+            groups = group_values(table.column(group_column), group_column, where)
         others = [c for c in names if c not in (id_column, label_column, embedding_column, group_column)]
         metadata = table.select(others) if others else None
         return cls._build(ids, labels, emb, groups, drop_invalid, source, metadata, where, rescaled)
@@ -144,7 +136,7 @@ class EmbeddingTable:
             raise TripletkitError("embeddings have dimension 0; every row needs at least one value")
         if not np.issubdtype(emb.dtype, np.number):
             raise TripletkitError(f"embeddings must hold real numbers, got dtype {emb.dtype}")
-        emb, rescaled = _float32(emb)
+        emb, rescaled = as_float32(emb)
         ids = np.asarray(ids)
         labels = np.asarray(labels)
         for name, arr in (("ids", ids), ("labels", labels)):
@@ -164,7 +156,7 @@ class EmbeddingTable:
             ids = ids.astype(np.int64)
         uniq, counts = np.unique(ids, return_counts=True)
         if uniq.shape[0] != ids.shape[0]:
-            raise TripletkitError(f"ids have duplicates (first: {_py(uniq[np.argmax(counts > 1)])!r}); ids must be unique")
+            raise TripletkitError(f"ids have duplicates (first: {plain(uniq[np.argmax(counts > 1)])!r}); ids must be unique")
         if groups is not None:
             groups = np.asarray(groups)
             if groups.shape != ids.shape:
@@ -190,15 +182,15 @@ class EmbeddingTable:
             if not drop_invalid:
                 parts = []
                 if bad_finite.any():
-                    parts.append(f"{int(bad_finite.sum())} rows with NaN/Inf (first ids: {_first(ids, bad_finite)})")
+                    parts.append(f"{int(bad_finite.sum())} rows with NaN/Inf (first ids: {first_ids(ids, bad_finite)})")
                 if bad_zero.any():
-                    parts.append(f"{int(bad_zero.sum())} zero-norm rows (first ids: {_first(ids, bad_zero)})")
+                    parts.append(f"{int(bad_zero.sum())} zero-norm rows (first ids: {first_ids(ids, bad_zero)})")
                 raise TripletkitError(
                     f"embeddings{where} have " + " and ".join(parts) + "; fix them or pass --drop-invalid"
                 )
             keep = ~bad
             dropped = int(bad.sum())
-            dropped_ids = tuple(_py(ids[p]) for p in np.flatnonzero(bad)[:5])
+            dropped_ids = tuple(plain(ids[p]) for p in np.flatnonzero(bad)[:5])
             if dropped == n:
                 raise _EveryRowInvalid(f"every row of the table{where} is invalid (NaN/Inf or zero norm)",
                                        rows=n, dim=int(emb.shape[1]), identities=len(np.unique(labels)))
@@ -304,50 +296,6 @@ def _of(source):
     return f" {str(source)!r}" if source else ""
 
 
-def id_array(ids, what="ids"):
-    """``ids`` as an Arrow array of int64 or strings, the id kinds of the table contract.
-
-    Parameters
-    ----------
-    ids : array-like of shape (n,), pyarrow.Array or ChunkedArray
-    what : str
-        What the ids are, for messages (e.g. ``"anchor ids of triplet table 't.parquet'"``).
-
-    Floats (0.7 is no id, and 1.0 would silently become 1), booleans, nulls and mixed kinds are
-    errors.
-    """
-    if isinstance(ids, (pa.Array, pa.ChunkedArray)):
-        arr = ids
-    else:
-        values = np.asarray(ids)
-        if values.ndim != 1:
-            raise TripletkitError(f"{what} must be a 1-D column of ids, got shape {values.shape}")
-        if values.size == 0:
-            return pa.array([], type=pa.string() if values.dtype.kind in "OUS" else pa.int64())
-        try:
-            arr = pa.array(values.tolist() if values.dtype == object else values)
-        except (pa.ArrowInvalid, pa.ArrowTypeError):
-            raise TripletkitError(f"{what} mix integers and strings; ids are all int64 or all strings") from None
-    if isinstance(arr, pa.ChunkedArray):
-        arr = arr.combine_chunks()
-    t = arr.type
-    if pa.types.is_dictionary(t):
-        arr = arr.cast(t.value_type)
-        t = arr.type
-    if pa.types.is_null(t) or arr.null_count:
-        first = int(np.flatnonzero(arr.is_null().to_numpy(zero_copy_only=False))[0])
-        raise TripletkitError(f"{what} have {arr.null_count} null values (first at row {first}); every row needs an id")
-    if pa.types.is_integer(t):
-        try:
-            return arr.cast(pa.int64())
-        except pa.ArrowInvalid:
-            raise TripletkitError(f"{what} have {t} values above {np.iinfo(np.int64).max}; ids are int64 or "
-                                  "strings") from None
-    if pa.types.is_string(t) or pa.types.is_large_string(t):
-        return arr.cast(pa.string())
-    raise TripletkitError(f"{what} have type {t}; ids are int64 or strings (as in the embedding table)")
-
-
 # -- reading ----------------------------------------------------------------------------------
 def _read_arrow(path):
     p = Path(path)
@@ -370,112 +318,6 @@ def _read_arrow(path):
             f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
         )
     return read_parquet_files(files, "part", f" of folder {str(p)!r}")
-
-
-def _key_column(col, name, role, where):
-    t = col.type
-    if pa.types.is_dictionary(t):
-        col = col.cast(t.value_type)
-        t = col.type
-    if col.null_count:
-        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
-        raise TripletkitError(
-            f"{role} column {name!r}{where} has {col.null_count} null values (first at row {first}); "
-            f"every row needs an {role}" if role == "id" else
-            f"{role} column {name!r}{where} has {col.null_count} null values (first at row {first}); "
-            f"every row needs a {role}"
-        )
-    if pa.types.is_integer(t):
-        try:
-            return col.cast(pa.int64()).to_numpy()
-        except pa.ArrowInvalid:
-            # uint64 values above 2**63 - 1 do not fit the int64 the contract asks for
-            raise TripletkitError(
-                f"{role} column {name!r}{where} has {t} values above {np.iinfo(np.int64).max}; store the {role}s "
-                "as int64 or string"
-            ) from None
-    if pa.types.is_string(t) or pa.types.is_large_string(t):
-        return col.to_numpy(zero_copy_only=False).astype(object)
-    raise TripletkitError(f"{role} column {name!r}{where} has type {t}; expected int64 or string")
-
-
-def _group_column(col, name, where):
-    """The optional subgroup column as a numpy array: integers, strings, booleans or numbers, no nulls."""
-    t = col.type
-    if pa.types.is_dictionary(t):
-        col = col.cast(t.value_type)
-        t = col.type
-    if not (pa.types.is_integer(t) or pa.types.is_string(t) or pa.types.is_large_string(t)
-            or pa.types.is_boolean(t) or pa.types.is_floating(t)):
-        raise TripletkitError(
-            f"group column {name!r}{where} has type {t}; expected strings or integers (name another column "
-            "with --group-column)"
-        )
-    if col.null_count:
-        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
-        raise TripletkitError(
-            f"group column {name!r}{where} has {col.null_count} null values (first at row {first}); fill them "
-            "(e.g. with 'unknown') or name another column with --group-column"
-        )
-    values = col.to_numpy(zero_copy_only=False)
-    if pa.types.is_floating(t) and np.isnan(values).any():
-        first = int(np.flatnonzero(np.isnan(values))[0])
-        raise TripletkitError(
-            f"group column {name!r}{where} has NaN values (first at row {first}); every row needs a group"
-        )
-    return values
-
-
-def _first_duplicate(ids):
-    uniq, counts = np.unique(ids, return_counts=True)
-    return _py(uniq[np.argmax(counts > 1)])
-
-
-def _embedding_matrix(col, name, ids, where):
-    """Convert an embedding column to a float32 (n, d) matrix without a per-row Python loop."""
-    t = col.type
-    arr = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
-    if not (pa.types.is_fixed_size_list(t) or pa.types.is_list(t) or pa.types.is_large_list(t)):
-        raise TripletkitError(
-            f"embedding column {name!r}{where} has type {t}; expected fixed_size_list<float32>[d] or list<float32>"
-        )
-    vt = t.value_type
-    if not pa.types.is_floating(vt) or pa.types.is_float16(vt):
-        raise TripletkitError(f"embedding column {name!r}{where} holds {vt} values; expected float32 or float64")
-    if arr.null_count:
-        mask = arr.is_null().to_numpy(zero_copy_only=False)
-        raise TripletkitError(
-            f"embedding column {name!r}{where} has {int(mask.sum())} null rows (first ids: {_first(ids, mask)}); "
-            "every row needs a vector, remove those rows"
-        )
-    n = len(arr)
-    if pa.types.is_fixed_size_list(t):
-        d = t.list_size
-    else:
-        lengths = pc.list_value_length(arr).to_numpy(zero_copy_only=False)
-        lo, hi = int(lengths.min()), int(lengths.max())
-        if lo != hi:
-            ragged = lengths != lengths[0]
-            raise TripletkitError(
-                f"embedding column {name!r}{where} has rows of length {int(lengths[0])} and "
-                f"{int(lengths[ragged][0])} (first ragged id: {_first(ids, ragged, 1)}); every row must have the same length"
-            )
-        d = lo
-    if d == 0:
-        raise TripletkitError(f"embedding column {name!r}{where} has rows of length 0; every row needs at least one value")
-    values = arr.flatten()
-    if values.null_count:
-        raise TripletkitError(
-            f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"
-        )
-    return _float32(values.to_numpy(zero_copy_only=False).reshape(n, d))
-
-
-def _float32(matrix):
-    """``(float32 matrix, rows rescaled)``: float64 rows outside float32's range keep their direction."""
-    if matrix.dtype.kind == "f" and matrix.dtype.itemsize > 4:
-        return float32_rows(matrix)
-    return np.ascontiguousarray(matrix, dtype=np.float32), 0
 
 
 def read_table(path, **options):
@@ -513,7 +355,7 @@ def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-
     where = f" {table.source!r}" if table.source else ""
     problems = []
     if impostor and table.n_identities < 2:
-        only = _py(table.label_values[0])
+        only = plain(table.label_values[0])
         problems.append(
             f"table{where} has a single identity (label {only!r}), so there are no impostor pairs; {what} needs "
             f"at least 2 identities ({hint})"

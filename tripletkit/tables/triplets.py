@@ -5,8 +5,6 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import numpy as np
-
 from .._errors import TripletkitError
 from .._io import read_parquet, read_parquet_schema
 from .embeddings import id_array

@@ -1,4 +1,4 @@
-"""Embedding table: reading, conversion, validation errors, normalisation, atomic writing."""
+"""tripletkit.tables.embeddings: reading, validating, normalising and writing embedding tables; check."""
 
 import os
 import re
