@@ -353,7 +353,10 @@ def read_parquet(path, what, columns=None, suffix=""):
     import pyarrow.parquet as pq
 
     try:
-        return pq.read_table(str(path), columns=columns, **PARQUET_READ)
+        # ParquetFile, not read_table: read_table goes through pyarrow.dataset, whose import also
+        # imports pandas when it is installed (a third of a second at every start)
+        with pq.ParquetFile(str(path), **PARQUET_READ) as handle:
+            return handle.read(columns=columns)
     except (pa.ArrowException, OSError) as exc:
         raise parquet_error(exc, [path], what, suffix) from None
 
@@ -369,14 +372,19 @@ def read_parquet_schema(path, what, suffix=""):
         raise parquet_error(exc, [path], what, suffix) from None
 
 
-def read_parquet_files(files, what, suffix=""):
-    """Read Parquet files of one schema as one table (a ``pyarrow.dataset``), verifying checksums."""
+def read_parquet_files(files, what, suffix="", base_dir=None):
+    """Read Parquet files of one schema as one table (a ``pyarrow.dataset``), verifying checksums.
+
+    With ``base_dir`` (the folder the files were found in), Hive partition keys in the paths below
+    it (``label=7/part-0.parquet``) come back as columns, as ``pyarrow.dataset`` reads them.
+    """
     import pyarrow as pa
     import pyarrow.dataset as ds
 
     fmt = ds.ParquetFileFormat(default_fragment_scan_options=ds.ParquetFragmentScanOptions(**PARQUET_READ))
+    hive = {} if base_dir is None else {"partitioning": "hive", "partition_base_dir": str(base_dir)}
     try:
-        return ds.dataset(list(files), format=fmt).to_table()
+        return ds.dataset(list(files), format=fmt, **hive).to_table()
     except (pa.ArrowException, OSError) as exc:
         raise parquet_error(exc, files, what, suffix) from None
 

@@ -337,3 +337,107 @@ def test_float64_rows_beyond_float32_range_pass_check(tmp_path, capsys, rng):
     assert main(["check", str(path), "--json"]) == 0
     out, err = capsys.readouterr()
     assert err == "" and '"invalid_rows": 0' in out
+
+
+# ---------------------------------------------------------------------------------------------
+# tables from anything a data scientist holds
+# ---------------------------------------------------------------------------------------------
+def _arrow_source(rng, n=60, k=6, d=5):
+    labels = np.repeat(np.arange(k), n // k)
+    x = rng.standard_normal((n, d)).astype(np.float32) + 2 * np.eye(d, dtype=np.float32)[labels % d]
+    return pa.table({"id": np.arange(n) + 100, "label": labels,
+                     "embedding": pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1)), d)})
+
+
+class _CapsuleOnly:
+    """An object that offers nothing but the Arrow PyCapsule stream interface."""
+
+    def __init__(self, table):
+        self._table = table
+
+    def __arrow_c_stream__(self, requested_schema=None):
+        return self._table.__arrow_c_stream__(requested_schema)
+
+
+def test_table_objects_give_the_same_table_as_the_file(tmp_path, rng):
+    import pyarrow.dataset as ds
+
+    from tripletkit.tables.embeddings import as_table
+
+    arrow = _arrow_source(rng)
+    pq.write_table(arrow, tmp_path / "t.parquet")
+    ref = as_table(tmp_path / "t.parquet")
+    sources = {
+        "arrow table": arrow,
+        "record batch": arrow.combine_chunks().to_batches()[0],
+        "record batch reader": pa.RecordBatchReader.from_batches(arrow.schema, arrow.to_batches()),
+        "dataset": ds.dataset(tmp_path / "t.parquet"),
+        "capsule": _CapsuleOnly(arrow),
+    }
+    for name, source in sources.items():
+        got = as_table(source)
+        assert got.fingerprint == ref.fingerprint, name
+        assert np.array_equal(got.embeddings, ref.embeddings), name
+
+
+def test_pandas_and_polars_dataframes_are_read_without_importing_them_in_the_package(rng):
+    import pandas as pd
+    import polars as pl
+
+    from tripletkit.tables.embeddings import as_table
+
+    arrow = _arrow_source(rng)
+    ref = as_table(arrow)
+    rows = arrow.column("embedding").to_pylist()
+    frame = pd.DataFrame({"id": arrow.column("id").to_numpy(), "label": arrow.column("label").to_numpy(),
+                          "embedding": [np.asarray(r, np.float32) for r in rows]})
+    assert as_table(frame).fingerprint == ref.fingerprint
+    assert as_table(pl.from_arrow(arrow)).fingerprint == ref.fingerprint
+    # the same column options and messages as for files
+    renamed = frame.rename(columns={"label": "seal"})
+    assert as_table(renamed, label_column="seal").fingerprint == ref.fingerprint
+    with pytest.raises(TripletkitError, match=r"^label column 'label' is missing in the pandas DataFrame given"):
+        as_table(renamed)
+
+
+def test_verbs_take_a_dataframe(rng):
+    import pandas as pd
+
+    from tripletkit import check, mine, score
+    from tripletkit.config import EvaluationConfig
+
+    arrow = _arrow_source(rng, n=120, k=12, d=6)
+    frame = arrow.to_pandas()
+    assert check(frame)["rows"] == 120
+    summary = mine(frame, regimes=("hard", "semi-hard"), quiet=True)
+    assert summary.anchors == 120
+    report = score(frame, config=EvaluationConfig(bootstrap=0, plots=False, clustering=False), quiet=True)
+    assert report["input"]["rows"] == 120 and report["verification"]["genuine_pairs"] == 12 * 45
+    assert isinstance(frame, pd.DataFrame)
+
+
+def test_hive_partitioned_folder_reads_its_keys_back_as_columns(tmp_path, rng):
+    from tripletkit.tables.embeddings import as_table
+
+    arrow = _arrow_source(rng)
+    pq.write_to_dataset(arrow, tmp_path / "by_label", partition_cols=["label"])
+    got = as_table(tmp_path / "by_label")
+    ref = as_table(arrow)
+    order = np.argsort(got.ids)
+    assert np.array_equal(got.ids[order], ref.ids)
+    assert np.array_equal(got.original_labels()[order], ref.original_labels())
+    assert np.array_equal(got.embeddings[order], ref.embeddings)
+
+
+def test_reading_tables_never_imports_pandas_or_polars(tmp_path, rng):
+    import subprocess
+    import sys
+
+    pq.write_table(_arrow_source(rng), tmp_path / "t.parquet")
+    code = ("import sys; from tripletkit import check, score; from tripletkit.config import EvaluationConfig; "
+            f"check({str(tmp_path / 't.parquet')!r}); "
+            f"score({str(tmp_path / 't.parquet')!r}, config=EvaluationConfig(bootstrap=0, plots=False), quiet=True); "
+            "print(sorted(m for m in ('pandas', 'polars') if m in sys.modules))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"

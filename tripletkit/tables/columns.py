@@ -10,8 +10,34 @@ import pyarrow.compute as pc
 from .._errors import TripletkitError
 from .._validate import float32_rows
 
-__all__ = ["id_array", "key_values", "group_values", "embedding_matrix", "first_duplicate", "first_ids", "plain",
+__all__ = ["numpy_of", "id_array", "key_values", "group_values", "embedding_matrix", "first_duplicate", "first_ids", "plain",
            "as_float32"]
+
+
+# numpy dtypes of Arrow's fixed-width number types
+_NUMPY_TYPES = {pa.int8(): np.int8, pa.int16(): np.int16, pa.int32(): np.int32, pa.int64(): np.int64,
+                pa.uint8(): np.uint8, pa.uint16(): np.uint16, pa.uint32(): np.uint32, pa.uint64(): np.uint64,
+                pa.float16(): np.float16, pa.float32(): np.float32, pa.float64(): np.float64}
+
+
+def numpy_of(arr):
+    """A numpy array holding an Arrow array's values (nulls must have been refused before).
+
+    pyarrow's own ``to_numpy`` imports pandas when pandas is installed (about a third of a second
+    at every start); reading the buffers directly does not, and is zero-copy for numbers.
+    Numbers come back in their numpy type, booleans as bool, strings as an object array.
+    """
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    if pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_decode()
+    if pa.types.is_boolean(arr.type):
+        arr = pc.cast(arr, pa.uint8())
+        return numpy_of(arr).astype(bool)
+    dtype = _NUMPY_TYPES.get(arr.type)
+    if dtype is not None:
+        return np.frombuffer(arr.buffers()[1], dtype=dtype, count=len(arr), offset=arr.offset * np.dtype(dtype).itemsize)
+    return np.array(arr.to_pylist(), dtype=object)
 
 
 def first_ids(ids, mask, k=5):
@@ -55,7 +81,7 @@ def id_array(ids, what="ids"):
         arr = arr.cast(t.value_type)
         t = arr.type
     if pa.types.is_null(t) or arr.null_count:
-        first = int(np.flatnonzero(arr.is_null().to_numpy(zero_copy_only=False))[0])
+        first = int(np.flatnonzero(numpy_of(arr.is_null()))[0])
         raise TripletkitError(f"{what} have {arr.null_count} null values (first at row {first}); every row needs an id")
     if pa.types.is_integer(t):
         try:
@@ -74,7 +100,7 @@ def key_values(col, name, role, where):
         col = col.cast(t.value_type)
         t = col.type
     if col.null_count:
-        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+        first = int(np.flatnonzero(numpy_of(col.is_null()))[0])
         raise TripletkitError(
             f"{role} column {name!r}{where} has {col.null_count} null values (first at row {first}); "
             f"every row needs an {role}" if role == "id" else
@@ -83,7 +109,7 @@ def key_values(col, name, role, where):
         )
     if pa.types.is_integer(t):
         try:
-            return col.cast(pa.int64()).to_numpy()
+            return numpy_of(col.cast(pa.int64()))
         except pa.ArrowInvalid:
             # uint64 values above 2**63 - 1 do not fit the int64 the contract asks for
             raise TripletkitError(
@@ -91,7 +117,7 @@ def key_values(col, name, role, where):
                 "as int64 or string"
             ) from None
     if pa.types.is_string(t) or pa.types.is_large_string(t):
-        return col.to_numpy(zero_copy_only=False).astype(object)
+        return numpy_of(col)
     raise TripletkitError(f"{role} column {name!r}{where} has type {t}; expected int64 or string")
 
 
@@ -108,12 +134,12 @@ def group_values(col, name, where):
             "with --group-column)"
         )
     if col.null_count:
-        first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+        first = int(np.flatnonzero(numpy_of(col.is_null()))[0])
         raise TripletkitError(
             f"group column {name!r}{where} has {col.null_count} null values (first at row {first}); fill them "
             "(e.g. with 'unknown') or name another column with --group-column"
         )
-    values = col.to_numpy(zero_copy_only=False)
+    values = numpy_of(col)
     if pa.types.is_floating(t) and np.isnan(values).any():
         first = int(np.flatnonzero(np.isnan(values))[0])
         raise TripletkitError(
@@ -139,7 +165,7 @@ def embedding_matrix(col, name, ids, where):
     if not pa.types.is_floating(vt) or pa.types.is_float16(vt):
         raise TripletkitError(f"embedding column {name!r}{where} holds {vt} values; expected float32 or float64")
     if arr.null_count:
-        mask = arr.is_null().to_numpy(zero_copy_only=False)
+        mask = numpy_of(arr.is_null())
         raise TripletkitError(
             f"embedding column {name!r}{where} has {int(mask.sum())} null rows (first ids: {first_ids(ids, mask)}); "
             "every row needs a vector, remove those rows"
@@ -148,7 +174,7 @@ def embedding_matrix(col, name, ids, where):
     if pa.types.is_fixed_size_list(t):
         d = t.list_size
     else:
-        lengths = pc.list_value_length(arr).to_numpy(zero_copy_only=False)
+        lengths = numpy_of(pc.list_value_length(arr))
         lo, hi = int(lengths.min()), int(lengths.max())
         if lo != hi:
             ragged = lengths != lengths[0]
@@ -164,7 +190,7 @@ def embedding_matrix(col, name, ids, where):
         raise TripletkitError(
             f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"
         )
-    return as_float32(values.to_numpy(zero_copy_only=False).reshape(n, d))
+    return as_float32(numpy_of(values).reshape(n, d))
 
 
 def as_float32(matrix):

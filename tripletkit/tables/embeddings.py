@@ -20,9 +20,10 @@ from .._errors import TripletkitError
 from .._io import PARQUET_WRITE, atomic_path, parquet_files, read_parquet, read_parquet_files, read_parquet_schema
 from .._validate import UNIT_NORM_TOLERANCE
 from .columns import (as_float32, embedding_matrix, first_duplicate, first_ids, group_values, id_array,
-                      key_values, plain)
+                      key_values, numpy_of, plain)
 
-__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "source_path", "check", "require_pairs",
+__all__ = ["EmbeddingTable", "read_table", "write_table", "as_table", "arrow_table", "source_path", "check",
+           "require_pairs",
            "pair_problems", "id_array"]
 
 #: Rows processed at once in the finiteness / norm pass (bounds the temporary memory).
@@ -99,9 +100,13 @@ class EmbeddingTable:
 
     @classmethod
     def from_arrow(cls, table, *, id_column="id", label_column="label", embedding_column="embedding",
-                   group_column="group", drop_invalid=False, source=None):
-        """Validate an in-memory ``pyarrow.Table`` that follows the table contract."""
-        where = f" in {source}" if source else ""
+                   group_column="group", drop_invalid=False, source=None, described=None):
+        """Validate an in-memory ``pyarrow.Table`` that follows the table contract.
+
+        ``source`` is the file it was read from (kept as :attr:`source`); ``described`` names it in
+        messages when there is no file (e.g. "the pandas DataFrame given").
+        """
+        where = f" in {source}" if source else (f" in {described}" if described else "")
         names = table.column_names
         for role, col in (("id", id_column), ("label", label_column), ("embedding", embedding_column)):
             if col not in names:
@@ -269,7 +274,7 @@ class EmbeddingTable:
                 f"{pos.null_count} {what} are not in the embedding table{_of(self.source)} (first: {first}); use "
                 "the table the ids come from"
             )
-        return pos.to_numpy(zero_copy_only=False).astype(np.int64)
+        return numpy_of(pos).astype(np.int64)
 
     def subset(self, rows):
         """A new table holding ``rows`` (positions), labels re-coded densely."""
@@ -317,7 +322,7 @@ def _read_arrow(path):
             f"folder {str(p)!r} mixes Parquet files with different schemas "
             f"({Path(a).name} and {Path(b).name}); every part must have the same columns and types"
         )
-    return read_parquet_files(files, "part", f" of folder {str(p)!r}")
+    return read_parquet_files(files, "part", f" of folder {str(p)!r}", base_dir=p)
 
 
 def read_table(path, **options):
@@ -334,17 +339,59 @@ def source_path(source):
 
 
 def as_table(source, **options):
-    """Accept a path, an :class:`EmbeddingTable` or an ``(ids, labels, embeddings)`` tuple."""
+    """An :class:`EmbeddingTable` from anything that holds one.
+
+    Parameters
+    ----------
+    source : str, Path, EmbeddingTable, tuple, or a table object
+        A Parquet file or folder (Hive partition keys become columns); an EmbeddingTable (returned
+        as it is); an ``(ids, labels, embeddings[, groups])`` tuple of arrays; or a table object:
+        a pyarrow Table, RecordBatch, RecordBatchReader or Dataset, a pandas or polars DataFrame,
+        or any object with the Arrow PyCapsule stream interface (``__arrow_c_stream__``). Table
+        objects are read through Arrow, without a copy where their layout allows.
+    **options
+        Column names and ``drop_invalid`` (see :meth:`EmbeddingTable.read`).
+    """
     if isinstance(source, EmbeddingTable):
         return source
     if isinstance(source, (str, Path)):
         return EmbeddingTable.read(source, **options)
     if isinstance(source, tuple) and len(source) in (3, 4):
-        drop = options.get("drop_invalid", False)
-        return EmbeddingTable.from_arrays(*source, drop_invalid=drop)
+        return EmbeddingTable.from_arrays(*source, drop_invalid=options.get("drop_invalid", False))
+    arrow = arrow_table(source)
+    if arrow is not None:
+        return EmbeddingTable.from_arrow(arrow, **options, source=None,
+                                         described=f"the {type(source).__module__.split('.')[0]} "
+                                                   f"{type(source).__name__} given")
     raise TripletkitError(
-        f"expected a table path, an EmbeddingTable or an (ids, labels, embeddings) tuple, got {type(source).__name__}"
+        f"expected a table path, an EmbeddingTable, an (ids, labels, embeddings) tuple, or a table object (an Arrow "
+        f"table, a pandas or polars DataFrame, an object with __arrow_c_stream__), got {type(source).__name__}"
     )
+
+
+def arrow_table(obj):
+    """``obj`` as a ``pyarrow.Table`` if it is a table object :func:`as_table` accepts, else None.
+
+    pandas and polars are never imported: a DataFrame of theirs is read through its Arrow stream
+    (``__arrow_c_stream__``, pandas >= 2.2, polars >= 1.0) or, for older versions, its own
+    conversion to Arrow.
+    """
+    if isinstance(obj, pa.Table):
+        return obj
+    if isinstance(obj, pa.RecordBatch):
+        return pa.Table.from_batches([obj])
+    if isinstance(obj, pa.RecordBatchReader):
+        return obj.read_all()
+    if type(obj).__module__ == "pyarrow._dataset" and hasattr(obj, "to_table"):
+        return obj.to_table()  # a pyarrow Dataset (importing pyarrow.dataset to check would import pandas)
+    if hasattr(obj, "__arrow_c_stream__"):
+        return pa.RecordBatchReader.from_stream(obj).read_all()
+    module = type(obj).__module__.split(".")[0]
+    if module == "pandas" and hasattr(obj, "columns"):
+        return pa.Table.from_pandas(obj, preserve_index=False)
+    if module == "polars" and hasattr(obj, "to_arrow"):
+        return obj.to_arrow()
+    return None
 
 
 def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):

@@ -9,6 +9,7 @@ import numpy as np
 
 from .._errors import TripletkitError
 from .._io import read_parquet
+from .columns import numpy_of
 
 __all__ = ["read_pair_list"]
 
@@ -61,7 +62,7 @@ def read_pair_list(path, table):
         if pa.types.is_dictionary(col.type):
             col = col.cast(col.type.value_type)
         if col.null_count:
-            first = int(np.flatnonzero(col.is_null().to_numpy(zero_copy_only=False))[0])
+            first = int(np.flatnonzero(numpy_of(col.is_null()))[0])
             raise TripletkitError(
                 f"pair list {str(p)!r} column {name!r} has {col.null_count} null values (first at row {first}); "
                 "every pair needs both ids" + (" and a same value" if name == "same" else "")
@@ -71,8 +72,8 @@ def read_pair_list(path, table):
         raise TripletkitError(
             f"pair list {str(p)!r} column 'same' has type {cols['same'].type}; expected boolean (true = same identity)"
         )
-    left_ids = cols["left"].to_numpy(zero_copy_only=False)
-    right_ids = cols["right"].to_numpy(zero_copy_only=False)
+    left_ids = numpy_of(cols["left"])
+    right_ids = numpy_of(cols["right"])
     left = table.positions(left_ids, what=f"'left' ids of pair list {str(p)!r}")
     right = table.positions(right_ids, what=f"'right' ids of pair list {str(p)!r}")
     selfpair = left == right
@@ -83,7 +84,7 @@ def read_pair_list(path, table):
         )
     same = None
     if "same" in cols:
-        same = cols["same"].to_numpy(zero_copy_only=False).astype(bool)
+        same = numpy_of(cols["same"]).astype(bool)
         truth = table.labels[left] == table.labels[right]
         wrong = same != truth
         if wrong.any():

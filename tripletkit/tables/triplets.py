@@ -7,7 +7,7 @@ from pathlib import Path
 
 from .._errors import TripletkitError
 from .._io import read_parquet, read_parquet_schema
-from .embeddings import id_array
+from .columns import id_array, numpy_of
 
 __all__ = ["read_triplets"]
 
@@ -37,7 +37,7 @@ def read_triplets(path):
     for col in _ID_COLUMNS:
         ids = id_array(table.column(col), f"{col} ids of triplet table {str(p)!r} (column {col!r})")
         kinds.add(ids.type)
-        out[col] = ids.to_numpy(zero_copy_only=False)
+        out[col] = numpy_of(ids)
     if len(kinds) > 1:
         raise TripletkitError(f"triplet table {str(p)!r} mixes integer and string ids across anchor, positive and "
                               "negative; all three hold ids of one embedding table")
