@@ -111,3 +111,31 @@ def test_console_script_entry_point_is_the_interrupt_safe_one():
 
     project = tomllib.loads((Path(__file__).resolve().parents[1] / "pyproject.toml").read_text())["project"]
     assert project["scripts"]["tripletkit"] == "tripletkit.__main__:main"
+
+
+def test_help_gives_one_default_per_option_and_lists_choices():
+    # every option of every command: at most one "(default:" in its help; every option whose
+    # config field has choices lets argparse check them and shows them
+    import dataclasses
+
+    from tripletkit.cli import build_parser
+    from tripletkit.config import ComputeConfig, EvaluationConfig, MiningConfig
+
+    parser = build_parser()
+    commands = parser._subparsers._group_actions[0].choices  # argparse keeps them here
+    seen = 0
+    for name, sub in commands.items():
+        for action in sub._actions:
+            assert (action.help or "").count("(default:") <= 1, (name, action.option_strings, action.help)
+            seen += 1
+    fields = {f.name: f for cls in (MiningConfig, EvaluationConfig, ComputeConfig) for f in dataclasses.fields(cls)}
+    for name in ("mine", "score"):
+        for action in commands[name]._actions:
+            key = action.dest.split("_", 2)[-1] if action.dest.startswith("cfg_") else None
+            field = fields.get(key)
+            if field is not None and (field.metadata.get("choices") or field.metadata.get("each")):
+                listed = field.metadata.get("choices") or field.metadata.get("each")
+                assert tuple(action.choices) == tuple(listed), key
+                assert ", ".join(listed) in action.help
+    assert seen > 50
+    assert "(default: none)" in commands["mine"].format_help() and "(default: no cap)" not in commands["mine"].format_help()

@@ -66,13 +66,13 @@ def _float_keys():
     import dataclasses
     import typing
 
-    from tripletkit.config import _SECTIONS, SweepRun, _unwrap_optional
+    from tripletkit.config import _SECTIONS, SweepRun, unwrap_optional
 
     out = []
     for section, cls in list(_SECTIONS.items()) + [("sweep.runs", SweepRun)]:
         hints = typing.get_type_hints(cls)
         for f in dataclasses.fields(cls):
-            tp, _ = _unwrap_optional(hints[f.name])
+            tp, _ = unwrap_optional(hints[f.name])
             if tp is float:
                 out.append((section, f.name, False))
             elif typing.get_origin(tp) is tuple and typing.get_args(tp)[0] is float:

@@ -24,7 +24,7 @@ import warnings
 from . import __version__
 from ._errors import INTERRUPTED, TripletkitError
 from ._io import check_not_input, jsonable
-from .config import ComputeConfig, EvaluationConfig, MiningConfig, _unwrap_optional
+from .config import ComputeConfig, EvaluationConfig, MiningConfig, unwrap_optional
 
 __all__ = ["main", "build_parser"]
 
@@ -52,10 +52,15 @@ def _config_options(p, cls, title, skip=()):
     for f in dataclasses.fields(cls):
         if f.name in skip:
             continue
-        tp, _ = _unwrap_optional(hints[f.name])
+        tp, _ = unwrap_optional(hints[f.name])
         flag = "--" + f.name.replace("_", "-")
         default = f.default if f.default is not dataclasses.MISSING else None
-        help_text = f"{f.metadata.get('help', '')} (default: {_show(default)})"
+        choices = f.metadata.get("choices") or f.metadata.get("each")
+        # one default per option; the choices, where there are any, in the help and the usage
+        help_text = f.metadata.get("help", "")
+        if choices:
+            help_text += f"; one of {', '.join(choices)}"
+        help_text = f"{help_text} (default: {_show(default)})".replace("%", "%%")
         dest = f"cfg_{cls.__name__}_{f.name}"
         if tp is bool:
             g.add_argument(flag, dest=dest, action=argparse.BooleanOptionalAction, default=None, help=help_text)
@@ -63,11 +68,11 @@ def _config_options(p, cls, title, skip=()):
             elem = typing.get_args(tp)[0]
             if dataclasses.is_dataclass(elem):
                 continue
-            g.add_argument(flag, dest=dest, nargs="+", type=_scalar_type(elem), default=None, metavar="V",
-                           help=help_text)
+            g.add_argument(flag, dest=dest, nargs="+", type=_scalar_type(elem), default=None, choices=choices,
+                           metavar=None if choices else "V", help=help_text)
         else:
-            g.add_argument(flag, dest=dest, type=_scalar_type(tp), default=None, metavar=_metavar(tp),
-                           help=help_text)
+            g.add_argument(flag, dest=dest, type=_scalar_type(tp), default=None, choices=choices,
+                           metavar=None if choices else _metavar(tp), help=help_text)
 
 
 def _scalar_type(tp):

@@ -21,7 +21,7 @@ from ._errors import TripletkitError
 
 __all__ = [
     "MiningConfig", "EvaluationConfig", "SweepConfig", "SweepRun", "HeadConfig", "DataConfig",
-    "ComputeConfig", "Config", "load_config", "section_from_dict", "override",
+    "ComputeConfig", "Config", "load_config", "section_from_dict", "override", "unwrap_optional",
 ]
 
 REGIME_NAMES = ("easy", "semi-hard", "hard")
@@ -38,16 +38,16 @@ class MiningConfig:
 
     margin: float = _opt(0.2, "margin alpha of the triplet loss, in (0, 4) for squared and (0, 2) for euclidean "
                          "distances", low=0.0, open_low=True)
-    distance: str = _opt("squared", "distance on unit vectors: squared (||a-b||^2) or euclidean",
+    distance: str = _opt("squared", "distance on unit vectors (squared: ||a-b||^2, euclidean: ||a-b||)",
                          choices=("squared", "euclidean"))
-    regimes: tuple[str, ...] = _opt(("semi-hard", "hard"), "regimes to mine: any of easy, semi-hard, hard",
+    regimes: tuple[str, ...] = _opt(("semi-hard", "hard"), "regimes to mine, one or more",
                                     each=REGIME_NAMES)
     positives_per_anchor: int = _opt(4, "positives drawn per anchor", low=1)
     negatives_per_positive: int = _opt(1, "negatives per (anchor, positive) pair and regime", low=1)
     select: str = _opt("random", "how a negative is chosen inside its regime",
                        choices=("hardest", "random", "distance-weighted"))
-    max_per_identity: int | None = _opt(None, "cap on anchors drawn from one identity (default: no cap)", low=1)
-    index: str = _opt("auto", "candidate search: exact, ivf, hnsw, or auto",
+    max_per_identity: int | None = _opt(None, "cap on anchors drawn from one identity (none: no cap)", low=1)
+    index: str = _opt("auto", "candidate search (auto: exact below exact_below rows, ivf from there)",
                       choices=("auto", "exact", "ivf", "hnsw"))
     exact_below: int = _opt(200_000, "with index=auto: exact search below this many rows", low=1)
     neighbours: int = _opt(100, "nearest neighbours searched first per anchor (widened when needed)", low=1)
@@ -105,7 +105,7 @@ class SweepConfig:
     margins: tuple[float, ...] | None = _opt(
         None, "margins to compare (required in fit-head mode; in checkpoints mode they come from the runs "
         "and, if given, must list the same values)", low=0.0, open_low=True)
-    mode: str = _opt("fit-head", "fit-head (fit a projection per margin) or checkpoints",
+    mode: str = _opt("fit-head", "fit-head (fit a projection per margin on frozen features) or checkpoints (score given runs)",
                      choices=("fit-head", "checkpoints"))
     primary: str = _opt("fnmr@0.001", "metric that ranks the runs (lower is better): eer or fnmr@<fmr>, "
                         "the FMR one of [evaluation] fmr")
@@ -125,7 +125,7 @@ class HeadConfig:
     epochs: int = _opt(8, "epochs (the miner runs once per epoch)", low=1)
     learning_rate: float = _opt(0.01, "step size", low=0.0, open_low=True)
     batch_triplets: int = _opt(256, "triplets per gradient step", low=1)
-    optimizer: str = _opt("adam", "adam or sgd (with momentum)", choices=("adam", "sgd"))
+    optimizer: str = _opt("adam", "optimiser (sgd: with momentum)", choices=("adam", "sgd"))
     momentum: float = _opt(0.9, "SGD momentum", low=0.0, high=1.0)
     seed: int = _opt(0, "seed of initialisation and batching", low=0)
 
@@ -142,7 +142,7 @@ class DataConfig:
 class ComputeConfig:
     """The ``[compute]`` section: where blocked plans run."""
 
-    scheduler: str | None = _opt(None, "Dask scheduler address or 'local-cluster' (default: this process)")
+    scheduler: str | None = _opt(None, "Dask scheduler address or 'local-cluster' (none: this process)")
     workers: int = _opt(2, "workers of a local cluster", low=1)
     partitions: int = _opt(0, "row partitions of the work (0: twice the workers)", low=0)
     no_workers_timeout: float = _opt(300.0, "seconds a run waits while its cluster has no worker before it stops "
@@ -170,7 +170,8 @@ def _hint(cls):
     return typing.get_type_hints(cls)
 
 
-def _unwrap_optional(tp):
+def unwrap_optional(tp):
+    """``(inner type, whether None is allowed)`` of a field's type hint (``int | None`` -> ``(int, True)``)."""
     if typing.get_origin(tp) in (typing.Union, types.UnionType):
         args = [a for a in typing.get_args(tp) if a is not type(None)]
         return args[0], True
@@ -178,7 +179,7 @@ def _unwrap_optional(tp):
 
 
 def _type_name(tp):
-    tp, _ = _unwrap_optional(tp)
+    tp, _ = unwrap_optional(tp)
     if typing.get_origin(tp) is tuple:
         inner = typing.get_args(tp)[0]
         return f"a list of {_type_name(inner)}s" if inner in (int, float, str) else "a list of tables"
@@ -224,7 +225,7 @@ def _check_range(value, meta, where):
 
 
 def _coerce(value, tp, meta, where, base):
-    inner, optional = _unwrap_optional(tp)
+    inner, optional = unwrap_optional(tp)
     if value is None:
         if optional:
             return None
@@ -268,7 +269,7 @@ def section_from_dict(cls, values, where, base=None, section=None):
             v = str((Path(base) / v)) if not Path(v).is_absolute() else v
         kwargs[key] = v
     for name, f in fields.items():
-        if name not in kwargs and f.default is None and not _unwrap_optional(hints[name])[1]:
+        if name not in kwargs and f.default is None and not unwrap_optional(hints[name])[1]:
             raise TripletkitError(f"{where}: key {name!r} is required")
     out = cls(**kwargs)
     if cls is MiningConfig:
@@ -325,11 +326,11 @@ def override(section, where="option", **values):
             raise TripletkitError(f"unknown {where} {key!r}; known: {', '.join(fields)}")
         if isinstance(value, list):
             value = tuple(value)
-        if isinstance(value, tuple) and typing.get_origin(_unwrap_optional(hints[key])[0]) is tuple:
+        if isinstance(value, tuple) and typing.get_origin(unwrap_optional(hints[key])[0]) is tuple:
             value = list(value)
         changes[key] = _coerce(value, hints[key], fields[key].metadata, _option(key), None)
     for key, f in fields.items():
-        inner = _unwrap_optional(hints[key])[0]
+        inner = unwrap_optional(hints[key])[0]
         nested = typing.get_origin(inner) is tuple and dataclasses.is_dataclass(typing.get_args(inner)[0])
         if key in changes or nested or dataclasses.is_dataclass(inner):
             continue
