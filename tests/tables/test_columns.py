@@ -40,3 +40,22 @@ def test_key_values_refuse_nulls_and_floats():
         C.key_values(pa.chunked_array([[None, 2]]), "label", "label", "")
     with pytest.raises(TripletkitError, match=r"has type double; expected int64 or string"):
         C.key_values(pa.chunked_array([[1.5]]), "label", "label", "")
+
+
+def test_sliced_arrays_give_their_own_rows():
+    # Arrow arrays can be views (an offset into shared buffers): the conversion reads from the offset
+    x = np.arange(12, dtype=np.float32)
+    fixed = pa.FixedSizeListArray.from_arrays(pa.array(x), 3).slice(1, 2)
+    assert C.embedding_matrix(fixed, "e", np.array([1, 2]), "")[0].tolist() == [[3, 4, 5], [6, 7, 8]]
+    listed = pa.array([[0.0, 1.0], [2.0, 3.0], [4.0, 5.0]], pa.list_(pa.float32())).slice(1, 2)
+    assert C.embedding_matrix(listed, "e", np.array([1, 2]), "")[0].tolist() == [[2, 3], [4, 5]]
+    ints = pa.array([5, 6, 7], pa.int32()).slice(1)
+    assert C.key_values(ints, "id", "id", "").tolist() == [6, 7]
+    flags = pa.array([True, False, True, True, False, False, True, False, True]).slice(7)
+    assert C.numpy_of(flags).tolist() == [False, True]
+
+
+def test_uint64_ids_above_int64_are_refused():
+    big = pa.array([1, 2**63 + 5], pa.uint64())
+    with pytest.raises(TripletkitError, match=r"has uint64 values above 9223372036854775807; store the ids as int64"):
+        C.key_values(big, "id", "id", "")

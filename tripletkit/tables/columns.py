@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from .._errors import TripletkitError
 from .._validate import float32_rows
@@ -31,9 +30,9 @@ def numpy_of(arr):
         arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
     if pa.types.is_dictionary(arr.type):
         arr = arr.dictionary_decode()
-    if pa.types.is_boolean(arr.type):
-        arr = pc.cast(arr, pa.uint8())
-        return numpy_of(arr).astype(bool)
+    if pa.types.is_boolean(arr.type):  # bit-packed, least significant bit first
+        bits = np.unpackbits(np.frombuffer(arr.buffers()[1], np.uint8), bitorder="little")
+        return bits[arr.offset:arr.offset + len(arr)].astype(bool)
     dtype = _NUMPY_TYPES.get(arr.type)
     if dtype is not None:
         return np.frombuffer(arr.buffers()[1], dtype=dtype, count=len(arr), offset=arr.offset * np.dtype(dtype).itemsize)
@@ -108,14 +107,14 @@ def key_values(col, name, role, where):
             f"every row needs a {role}"
         )
     if pa.types.is_integer(t):
-        try:
-            return numpy_of(col.cast(pa.int64()))
-        except pa.ArrowInvalid:
+        values = numpy_of(col)
+        if t == pa.uint64() and values.size and values.max() > np.iinfo(np.int64).max:
             # uint64 values above 2**63 - 1 do not fit the int64 the contract asks for
             raise TripletkitError(
                 f"{role} column {name!r}{where} has {t} values above {np.iinfo(np.int64).max}; store the {role}s "
                 "as int64 or string"
-            ) from None
+            )
+        return values.astype(np.int64, copy=False)
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         return numpy_of(col)
     raise TripletkitError(f"{role} column {name!r}{where} has type {t}; expected int64 or string")
@@ -173,8 +172,11 @@ def embedding_matrix(col, name, ids, where):
     n = len(arr)
     if pa.types.is_fixed_size_list(t):
         d = t.list_size
+        first = arr.offset * d  # the child values of this (possibly sliced) array start here
     else:
-        lengths = numpy_of(pc.list_value_length(arr))
+        offsets = np.frombuffer(arr.buffers()[1], np.int64 if pa.types.is_large_list(t) else np.int32,
+                                count=n + 1, offset=arr.offset * (8 if pa.types.is_large_list(t) else 4))
+        lengths = np.diff(offsets)
         lo, hi = int(lengths.min()), int(lengths.max())
         if lo != hi:
             ragged = lengths != lengths[0]
@@ -183,9 +185,11 @@ def embedding_matrix(col, name, ids, where):
                 f"{int(lengths[ragged][0])} (first ragged id: {first_ids(ids, ragged, 1)}); every row must have the same length"
             )
         d = lo
+        first = int(offsets[0])
     if d == 0:
         raise TripletkitError(f"embedding column {name!r}{where} has rows of length 0; every row needs at least one value")
-    values = arr.flatten()
+    # the child values directly (flatten() would load pyarrow.compute, a tenth of a second)
+    values = arr.values.slice(first, n * d)
     if values.null_count:
         raise TripletkitError(
             f"embedding column {name!r}{where} has {values.null_count} null values inside rows; every value must be a number"

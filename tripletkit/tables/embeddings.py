@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .._errors import TripletkitError
@@ -117,7 +116,7 @@ class EmbeddingTable:
         if table.num_rows == 0:
             raise TripletkitError(f"table{where} has no rows; is it the right file?")
         ids = key_values(table.column(id_column), id_column, "id", where)
-        if len(pc.unique(table.column(id_column))) != table.num_rows:
+        if (len(set(ids.tolist())) if ids.dtype == object else np.unique(ids).size) != table.num_rows:
             dup = first_duplicate(ids)
             raise TripletkitError(f"id column {id_column!r}{where} has duplicate ids (first: {dup!r}); ids must be unique")
         labels = key_values(table.column(label_column), label_column, "label", where)
@@ -266,6 +265,8 @@ class EmbeddingTable:
                 "use the ids of the table (the same kind, int64 or string)"
             )
         lookup = pa.array(self.ids.tolist(), type=pa.string()) if table_strings else pa.array(self.ids)
+        import pyarrow.compute as pc
+
         pos = pc.index_in(query, value_set=lookup)
         if pos.null_count:
             missing = pc.unique(query.filter(pos.is_null()))
