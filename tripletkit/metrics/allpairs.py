@@ -25,7 +25,7 @@ import numpy as np
 
 from .._exact import snap
 from .bins import EMBEDDING_SCALE, NBINS, NOT_A_PAIR, add_histogram, keys_of
-from .refine import Refiner, TopImpostors, keep_per_group
+from .refine import Refiner, keep_per_group
 
 __all__ = ["BYTES_PER_BLOCK_SCORE", "BYTES_PER_KEPT", "KEEP_SHARE", "TABLE_SHARE", "Blocks", "BlockPlan",
            "FirstPass", "block_size", "workers_for", "count_task", "list_task", "kept_task"]
@@ -170,7 +170,7 @@ class Blocks:
 def count_task(shared, starts, stopped):
     """First pass over some blocks.
 
-    ``shared`` is ``(blocks, top)``: the :class:`Blocks` and an empty :class:`TopImpostors` to
+    ``shared`` is ``(blocks, top)``: the :class:`Blocks` and an empty :class:`~.refine.TopImpostors` to
     copy, or None to keep no impostors. Returns ``(histogram, genuine, top)``: the bin counts of
     every score, ``[(r0, values, identities, groups)]`` per block, and the kept impostors.
     """
@@ -232,13 +232,12 @@ def kept_task(shared, runs, stopped):
 # the plan
 # ---------------------------------------------------------------------------------------------
 class FirstPass(NamedTuple):
-    """The merged first pass: bin counts, genuine scores (scaled, block order), kept impostors."""
+    """The merged first pass: bin counts of every score and the genuine scores (scaled, block order)."""
 
     histogram: np.ndarray  # (NBINS,) int64, every score
     genuine: np.ndarray  # scaled genuine scores
     genuine_identity: np.ndarray  # int64 identity code of each
     genuine_group: np.ndarray | None  # group code of each pair (-1: across groups); None without groups
-    top: TopImpostors | None  # the highest impostor scores kept, merged
 
 
 class BlockPlan:
@@ -271,8 +270,8 @@ class BlockPlan:
         return kept <= KEEP_SHARE * self.memory_budget
 
     def count(self, top):
-        """The first pass; ``top`` (a :class:`TopImpostors`, or None) is copied for every group
-        and the copies merged (complete from the highest of their floors)."""
+        """The first pass. ``top`` (a :class:`~.refine.TopImpostors`, or None) is copied for every group and
+        ends holding the copies merged (complete from the highest of their floors)."""
         template = None if top is None else top.fresh(self.workers)
         hist = np.zeros(NBINS, np.int64)
         genuine, tops = [], []
@@ -289,7 +288,7 @@ class BlockPlan:
             grps += g
         return FirstPass(hist, np.concatenate(vals) if vals else np.empty(0, np.float64),
                          np.concatenate(ids) if ids else np.empty(0, np.int64),
-                         np.concatenate(grps) if grps else None, top)
+                         np.concatenate(grps) if grps else None)
 
     def list_bins(self, selection, histogram, pairs):
         """A :class:`Refiner` of ``selection`` that saw every block (the second pass).

@@ -21,7 +21,8 @@ import numpy as np
 from .bins import NBINS, keys_of, lowest_scaled_in
 from .rates import max_false_matches
 
-__all__ = ["COLLECT", "WINDOW", "BinSelection", "Refiner", "TopImpostors", "choose_bins", "keep_per_group"]
+__all__ = ["COLLECT", "WINDOW", "BinSelection", "Listing", "Refiner", "TopImpostors", "choose_bins", "keep_per_group",
+           "operating_bins"]
 
 #: Code of a bin whose exact impostor scores are listed.
 COLLECT = np.uint8(1)

@@ -244,87 +244,57 @@ def verify_all_pairs(embeddings, labels, *, groups=None, fmr_targets=DEFAULT_FMR
     Parameters
     ----------
     embeddings : array-like of shape (n, d)
-        Unit-normalised embeddings (float32, C-contiguous preferred; rows must have norm 1 within
-        1e-3). Scores are cosine similarities, exact on the grid of :mod:`tripletkit._exact`.
+        Unit rows (norm 1 within 1e-3); scores are their exact cosines (:mod:`tripletkit._exact`).
     labels : array-like of shape (n,)
         Identity of each row: a pair is genuine when both rows share the label.
     groups : array-like of shape (n,), optional
-        Subgroup of each row. ``groups`` in the report gives, for each group, FMR and FNMR at the
-        global threshold of each FMR target over the pairs whose two rows are both in the group.
-
+        Subgroup of each row: ``groups`` in the report gives FMR and FNMR at each global
+        threshold over the pairs whose two rows are both in the group.
     fmr_targets : sequence of float, default (1e-4, 1e-3, 1e-2)
         FMR operating points.
+    bootstrap, confidence, seed, grid_per_decade : int, float, int, int, default 200, 0.95, 0, 40
+        Replicates of the identity-level bootstrap of FNMR at each target (0: none), coverage of
+        its percentile interval, its seed, and FMR levels per decade of its threshold grid
+        (fewer when identities x levels would pass 8 million counts).
     curve_points : int, default 512
         About how many ROC/DET points to report (even in log FMR and in FNMR).
     exact_auc : {"auto", True, False}, default "auto"
-        ``True``: list the exact impostor scores of every histogram bin that also holds genuine
-        scores (within ``auc_budget``), so that the AUC is exact, even if that takes a second
-        pass. ``"auto"``: list those from the lowest bin an operating point or the bootstrap
-        window needs up (their scores are at hand anyway). ``False``: none. Unlisted bins count
-        their pairs as ties and ``auc_error_bound`` bounds the error.
+        Which bins holding both genuine and impostor scores to list exactly for the AUC:
+        ``True`` every one (within ``auc_budget``, even if that takes a second pass), ``"auto"``
+        those from the lowest bin the operating points or the bootstrap need, ``False`` none.
+        Unlisted bins count as ties; ``auc_error_bound`` bounds the error.
     auc_budget : int, default 2**24
-        Most impostor scores to list for the AUC; the bins with the most (genuine x impostor)
-        pairs first.
-
-    bootstrap : int, default 200
-        Identity-level bootstrap replicates for the interval of FNMR at each FMR target (0 = none).
-    confidence : float, default 0.95
-        Coverage of the percentile interval.
-    seed : int, default 0
-        Seed of the bootstrap (``np.random.default_rng``).
-    grid_per_decade : int, default 40
-        FMR levels per decade of the bootstrap's threshold grid (fewer when identities x levels
-        would pass 8 million counts).
-
-    memory_budget : int, default 256 MiB
-        Memory and speed only, like the three below: no number of the report depends on them
-        (``passes`` may). Bytes for the block buffers (13 bytes per score of a block and worker)
-        and, on top, for the impostor scores kept in the first pass (20 bytes each, up to
-        :data:`tripletkit.metrics.allpairs.KEEP_SHARE` of the budget).
-    block_rows : int, optional
-        Rows per block, overriding ``memory_budget``.
-    workers : int, optional
-        Groups of blocks computed side by side (default: the engine's ``threads`` if it has
-        them, else one per CPU within ``memory_budget``: two with the default block size).
-    engine : object, optional
-        Runs the groups: ``engine.map(task, shared, items)`` (:mod:`tripletkit.engines`); default
-        ``LocalEngine(threads=workers)``, whose threads compute with one BLAS thread each (a
-        process-wide limit while they run).
+        Most impostor scores to list for the AUC, the bins with most genuine x impostor pairs first.
+    memory_budget, block_rows, workers, engine
+        Memory and speed only: no number of the report depends on them (``passes`` may).
+        ``memory_budget`` (default 256 MiB) holds the block buffers (13 bytes per score of a
+        block and worker) and the impostors kept in the first pass (20 bytes each, up to
+        :data:`~tripletkit.metrics.allpairs.KEEP_SHARE` of it); ``block_rows`` overrides the block
+        size; ``workers`` groups of blocks run side by side (default: the engine's ``threads``,
+        else one per CPU within the budget); ``engine`` runs them (:mod:`tripletkit.engines`;
+        default ``LocalEngine(threads=workers)``, whose threads use one BLAS thread each).
 
     Returns
     -------
     dict
-        ``genuine_pairs``, ``impostor_pairs`` (int); ``auc``; ``auc_exact`` (bool) and
-        ``auc_error_bound`` (0.0 when exact; else the AUC is within this of the exact value);
-        ``eer``, ``eer_threshold``; ``fnmr_at_fmr``: ``{"0.001": {"fnmr", "threshold", "ci":
-        [lo, hi] or None, "resolvable", "reason"}}``; ``roc``: ``{"fpr", "tpr", "threshold"}``
-        and ``det``: ``{"fmr", "fnmr"}`` (downsampled lists); ``score_histogram``: ``{"edges",
-        "genuine", "impostor"}`` (200 bins over [-1, 1]); ``bootstrap`` (settings and method);
-        ``passes`` (1 or 2); ``groups`` when groups are given. Plain Python numbers; ``None``
-        with a ``reason`` when a value cannot be computed. No genuine or no impostor pairs gives
-        a warning and ``None`` values.
+        ``genuine_pairs``, ``impostor_pairs``; ``auc``, ``auc_exact``, ``auc_error_bound``;
+        ``eer``, ``eer_threshold``; ``fnmr_at_fmr``: ``{"0.001": {"fnmr", "threshold", "ci",
+        "resolvable", "reason"}}``; ``roc`` (``fpr``, ``tpr``, ``threshold``) and ``det``
+        (``fmr``, ``fnmr``), downsampled; ``score_histogram`` (``edges``, ``genuine``,
+        ``impostor``: 200 bins over [-1, 1]); ``bootstrap`` (settings and method); ``passes``
+        (1 or 2); ``groups`` with groups. Plain Python numbers; ``None`` with a ``reason`` where a
+        value cannot be computed (no genuine or no impostor pairs also warns).
 
     Notes
     -----
-    Definitions (:mod:`.rates`): ``fnmr_at_fmr[x]`` is the lowest FNMR over thresholds with
-    ``FMR <= x``, reported with that threshold; the EER is interpolated linearly where FMR - FNMR
-    changes sign; the AUC is the Mann-Whitney statistic. A target with fewer than ``3/x``
-    impostor pairs is not resolvable (rule of 3).
-
-    Exactness (:mod:`.refine`): the first pass counts every score into bins of width ``2**-18``
-    and keeps the genuine and the highest impostor scores; the exact impostor scores of the bins
-    holding an operating point come from the kept ones when they reach low enough (``passes``
-    1), else from a second pass (2). So FNMR at FMR, its thresholds and the EER equal what
-    sorting every score would give; each group of blocks keeps its own highest impostors, so
-    ``passes`` can differ with ``workers``, the numbers cannot. A histogram bin holding both
-    kinds of scores that was not listed counts its pairs as ties in the AUC
-    (``auc_error_bound``).
-
-    Intervals (``ci``): the identity-level bootstrap of :mod:`.bootstrap`, on a grid of
-    ``grid_per_decade`` FMR levels a decade from target/f to f x target (f from 8 for few
-    identities down to 1.25 for thousands).
-
-    Memory is O(n*d + workers*block*n + bins + genuine pairs + kept impostors + identities * grid).
+    Definitions are those of :mod:`.rates` (FNMR at FMR: the lowest FNMR over thresholds with
+    FMR <= x; a target with fewer than 3/x impostor pairs is not resolvable). The first pass
+    counts every score into bins of width ``2**-18`` and keeps the genuine and the highest
+    impostor scores; the exact scores of the bins holding an operating point come from the kept
+    ones when they reach low enough (``passes`` 1), else from a second pass (:mod:`.refine`), so
+    FNMR at FMR, its thresholds and the EER are what sorting every score would give. Intervals:
+    :mod:`.bootstrap`. Memory is O(n*d + workers*block*n + bins + genuine pairs + kept
+    impostors + identities * grid).
     """
     request = _request(fmr_targets, bootstrap, confidence, seed, curve_points, grid_per_decade)
     block_rows = whole_number(block_rows, "block_rows", low=1, allow_none=True)
