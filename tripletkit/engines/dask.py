@@ -445,9 +445,9 @@ class DaskEngine:
         self._sent = {}
 
     def _scattered(self, obj):
-        """``obj`` on every worker, sent once however many maps share it."""
-        if obj is None:
-            return None
+        """``obj`` on every worker, sent once however many maps share it (scalars go with the tasks)."""
+        if obj is None or isinstance(obj, (bool, int, float, str)):
+            return obj
         if id(obj) not in self._sent:
             (future,) = self.client.scatter([obj], broadcast=True, hash=False)
             self._sent[id(obj)] = (obj, future)  # obj kept, so that its id is not reused
