@@ -7,7 +7,6 @@ impostors of the first pass, or a second pass) change how the work is done, neve
 import os
 import time
 
-import numpy as np
 import pytest
 
 from tripletkit.engines import LocalEngine
