@@ -29,7 +29,8 @@ import tracemalloc
 import numpy as np
 from sklearn.metrics import roc_curve
 
-from tripletkit.metrics.verification import _Blocks, verify_all_pairs
+from tripletkit.metrics.allpairs import Blocks, block_size, workers_for
+from tripletkit.metrics.verification import verify_all_pairs
 
 TARGETS = (1e-4, 1e-3, 1e-2)
 DEFAULT = "defaults (200 bootstrap replicates, exact_auc='auto')"
@@ -117,9 +118,9 @@ def part_a(rows, rng, repeats):
 
 
 def _workers(x, labels):
-    from tripletkit.metrics.verification import default_workers
-
-    return default_workers(_Blocks(x, labels, None, None, 256 * 2**20), 256 * 2**20)
+    """Worker threads verify_all_pairs chooses for ``x`` with the default budget."""
+    budget = 256 * 2**20
+    return workers_for(len(x), block_size(len(x), None, budget), budget)
 
 
 def clustered_rows(rng, n, d, identities):
@@ -132,7 +133,7 @@ def clustered_rows(rng, n, d, identities):
 
 def matmul_rate(x, labels, memory_budget):
     """Pairs per second of the bare float32 products of the same blocks (no counting)."""
-    blocks = _Blocks(x, labels, None, None, memory_budget)
+    blocks = Blocks(x, labels, None, block_size(len(x), None, memory_budget))
     n, b = blocks.n, blocks.b
     buf = np.empty(b * n, np.float32)
     t0 = time.perf_counter()

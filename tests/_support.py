@@ -50,10 +50,14 @@ def lattice_table(rng, n, k, d=12, centre=20, spread=12, scale=64):
     return (rows / scale).astype(np.float32), labels
 
 
-def clustered_rows(rng, n, d, k, noise=1.0):
-    """(float32 unit rows (n, d), labels): a standard normal centre per identity plus noise."""
+def clustered_rows(rng, n, d, k, noise=1.0, labels=None):
+    """(float32 unit rows (n, d), labels): a standard normal centre per identity plus noise.
+
+    The identities are drawn at random unless ``labels`` (n,) gives them.
+    """
     centres = rng.standard_normal((k, d))
-    labels = rng.integers(0, k, n)
+    if labels is None:
+        labels = rng.integers(0, k, n)
     x = centres[labels] + noise * rng.standard_normal((n, d))
     return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), labels
 

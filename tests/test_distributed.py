@@ -93,7 +93,8 @@ def test_score_demo_is_identical(compute, tmp_path):
     one = score(HELDOUT, out=tmp_path / "one", quiet=True)
     many = score(HELDOUT, out=tmp_path / "many", quiet=True, compute=compute)
     assert _comparable(many) == _comparable(one)
-    assert many["verification"]["passes"] == 2
+    # the task groups keep their highest impostor scores, which reach the operating points' bins
+    assert many["verification"]["passes"] == 1
     # the written reports agree too (report.json holds the same dict)
     a = _comparable(json.loads((tmp_path / "one" / "report.json").read_text()))
     b = _comparable(json.loads((tmp_path / "many" / "report.json").read_text()))
@@ -110,6 +111,8 @@ def test_score_random_partitioned_table_is_identical(compute, tmp_path, rng, par
     many = score(folder, config=cfg, quiet=True, compute=dataclasses.replace(compute, partitions=partitions))
     assert one["verification"]["groups"]  # the group column is scored on both paths
     assert _comparable(many) == _comparable(one)
+    # 16 MiB hold too few of the highest impostor scores: a second pass lists the bins
+    assert many["verification"]["passes"] == 2
 
 
 def test_score_pair_list_and_relative_paths(compute, tmp_path, rng, monkeypatch):

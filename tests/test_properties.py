@@ -17,7 +17,6 @@ Runs are derandomised (``derandomize=True``) so CI sees the same examples every 
 """
 
 import json
-import math
 import warnings
 
 import numpy as np
@@ -33,6 +32,7 @@ from tripletkit.losses import REGIMES
 from tripletkit.metrics.verification import verify_all_pairs
 from tripletkit.mining import mine
 from tripletkit.tables.embeddings import EmbeddingTable
+from _support import four_squares, pair_scores
 
 SETTINGS = dict(derandomize=True, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 # Pairs this close to a regime boundary may fall on either side with another summation order
@@ -178,18 +178,6 @@ def _check_counts_per_pair(s, labels, D, m, options):
 # ---------------------------------------------------------------------------------------------
 # verification
 # ---------------------------------------------------------------------------------------------
-def _four_squares(rem):
-    """Four non-negative integers whose squares sum to ``rem`` (Lagrange's four-square theorem)."""
-    for a in range(math.isqrt(rem) + 1):
-        for b in range(math.isqrt(rem - a * a) + 1):
-            for c in range(math.isqrt(rem - a * a - b * b) + 1):
-                e2 = rem - a * a - b * b - c * c
-                e = math.isqrt(e2)
-                if e * e == e2:
-                    return a, b, c, e
-    raise AssertionError(rem)
-
-
 @st.composite
 def exact_unit_tables(draw):
     """Unit rows of integers / 8 (completed to norm 1 by four squares): float32 products are exact,
@@ -202,15 +190,8 @@ def exact_unit_tables(draw):
     rows = np.zeros((n, d + 4))
     for r in range(n):
         rows[r, :d] = v[r]
-        rows[r, d:] = _four_squares(int(64 - (v[r] ** 2).sum()))
+        rows[r, d:] = four_squares(int(64 - (v[r] ** 2).sum()))
     return (rows / 8).astype(np.float32), labels
-
-
-def _brute(x, labels):
-    s = x.astype(np.float64) @ x.astype(np.float64).T
-    i, j = np.triu_indices(len(x), 1)
-    same = labels[i] == labels[j]
-    return s[i, j][same], s[i, j][~same]
 
 
 def _brute_fnmr_at_fmr(gen, imp, x):
@@ -241,7 +222,8 @@ TARGETS = (0.01, 0.05, 0.1, 0.25, 0.5)
 @given(table=exact_unit_tables(), block_rows=st.sampled_from([None, 1, 3, 7]))
 def test_verification_rates_are_exact_bounded_and_monotone(table, block_rows):
     x, labels = table
-    gen, imp = _brute(x, labels)
+    scores, genuine, _, _ = pair_scores(x, labels)
+    gen, imp = scores[genuine], scores[~genuine]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         r = verify_all_pairs(x, labels, fmr_targets=TARGETS, bootstrap=0, block_rows=block_rows)

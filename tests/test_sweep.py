@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 
 from tripletkit._errors import TripletkitError
-from tripletkit.metrics.verification import count_scores, equal_error_rate, fnmr_at_fmr, verify_all_pairs
+from tripletkit.metrics.rates import count_scores, equal_error_rate, fnmr_at_fmr
+from tripletkit.metrics.verification import verify_all_pairs
 from tripletkit.sweeps import _metric, _PairScores, paired_comparison, parse_primary, sweep
 from tripletkit.tables.embeddings import write_table
 

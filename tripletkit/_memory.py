@@ -325,7 +325,7 @@ def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identitie
     _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
                  identities=identities)
     budget = memory_mb * _MB
-    from .metrics.verification import _BYTES_PER_BLOCK_SCORE, block_size, workers_for
+    from .metrics.allpairs import BYTES_PER_BLOCK_SCORE as _BYTES_PER_BLOCK_SCORE, block_size, workers_for
 
     nn = max(n, 1)
     b = block_size(nn, block_rows or None, budget)  # the verification's own rules

@@ -237,10 +237,67 @@ def check_flag(value, name):
 #
 #
 # -- checks of metrics (added by the metrics room) ----------------------------------------------
-#
-#
-#
-#
-#
-#
+def as_scores(scores, name):
+    """``scores`` as a 1-D float64 array of finite real numbers."""
+    arr = np.asarray(scores)
+    if arr.ndim != 1:
+        raise TripletkitError(f"{name} must be a 1-D array of scores, got shape {arr.shape}")
+    if arr.size and (not np.issubdtype(arr.dtype, np.number) or np.issubdtype(arr.dtype, np.complexfloating)):
+        raise TripletkitError(f"{name} must hold real numbers, got dtype {arr.dtype}")
+    arr = arr.astype(np.float64)
+    bad = ~np.isfinite(arr)
+    if bad.any():
+        raise TripletkitError(
+            f"{name} has {int(bad.sum())} NaN or Inf scores (first positions: {np.flatnonzero(bad)[:5].tolist()}); "
+            "remove or repair them"
+        )
+    return arr
+
+
+def as_positions(positions, n, name):
+    """``positions`` as a 1-D int64 array of row positions of a table with ``n`` rows."""
+    arr = np.asarray(positions)
+    if arr.ndim != 1:
+        raise TripletkitError(f"{name} must be a 1-D array of row positions, got shape {arr.shape}")
+    if arr.size and not np.issubdtype(arr.dtype, np.integer):
+        raise TripletkitError(f"{name} must hold integer row positions, got dtype {arr.dtype}")
+    arr = arr.astype(np.int64)
+    bad = (arr < 0) | (arr >= n)
+    if bad.any():
+        first = int(np.flatnonzero(bad)[0])
+        raise TripletkitError(
+            f"{name}[{first}] = {int(arr[first])} is not a row position of a table with {n} rows; "
+            "positions run from 0 to n-1"
+        )
+    return arr
+
+
+def check_fmr_targets(fmr_targets):
+    """FMR targets as a sorted list of distinct floats in (0, 1]."""
+    try:
+        targets = [float(x) for x in fmr_targets]
+    except (TypeError, ValueError):
+        raise TripletkitError(f"fmr_targets must be a list of numbers, got {fmr_targets!r}") from None
+    bad = [x for x in targets if not (0.0 < x <= 1.0) or not np.isfinite(x)]
+    if bad:
+        raise TripletkitError(f"fmr_targets must lie in (0, 1], got {bad}; give e.g. [0.0001, 0.001, 0.01]")
+    if not targets:
+        raise TripletkitError("fmr_targets is empty; give at least one FMR target, e.g. [0.001]")
+    return sorted(set(targets))
+
+
+def check_bootstrap(replicates):
+    """A number of bootstrap replicates (0: no interval), as an int."""
+    if isinstance(replicates, bool) or not isinstance(replicates, (int, np.integer)) or replicates < 0:
+        raise TripletkitError(f"bootstrap must be a whole number of replicates >= 0, got {replicates!r}")
+    return int(replicates)
+
+
+def check_confidence(confidence):
+    """The coverage of an interval, a float in (0, 1)."""
+    if not (0.0 < float(confidence) < 1.0):
+        raise TripletkitError(f"confidence must lie in (0, 1), got {confidence!r}; e.g. 0.95")
+    return float(confidence)
+
+
 # -- checks of reports and sweeps (added by the report room) ------------------------------------

@@ -46,14 +46,15 @@ def _say(quiet, text):
 # ---------------------------------------------------------------------------------------------
 # the metrics, each with its degenerate cases turned into nulls with a reason
 # ---------------------------------------------------------------------------------------------
-def _verification(table, cfg, pairs):
+def _verification(table, cfg, pairs, engine=None):
     from .metrics.verification import verify_all_pairs, verify_pairs
 
     common = dict(groups=table.groups, fmr_targets=cfg.fmr, bootstrap=cfg.bootstrap,
                   confidence=cfg.confidence, seed=cfg.seed)
     if pairs is None:
         return verify_all_pairs(table.embeddings, table.labels, memory_budget=cfg.memory_mb * 2**20,
-                                block_rows=cfg.block_rows or None, workers=cfg.threads or None, **common)
+                                block_rows=cfg.block_rows or None, workers=cfg.threads or None, engine=engine,
+                                **common)
     left, right, same = pairs
     return verify_pairs(table.embeddings, table.labels, left, right, same=same, **common)
 
@@ -141,7 +142,8 @@ def _guard_memory(table, cfg):
                        suggestion="lower --memory-mb or --block-rows, or score a fixed --pairs list")
 
 
-def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None):
+def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None,
+          engine=None):
     """Score held-out embeddings: verification, retrieval, clustering and embedding health.
 
     Parameters
@@ -164,6 +166,9 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
         With ``compute.scheduler`` set, run on a Dask cluster instead
         (:func:`tripletkit.distributed.score_on_cluster`; ``source`` must then be a Parquet
         path the workers can read); the report is the same.
+    engine : object, optional
+        Runs the all-pairs verification's tasks (:mod:`tripletkit.engines`; default: threads of
+        this process, ``threads`` of the config).
 
     Returns
     -------
@@ -234,7 +239,7 @@ def score(source, out=None, *, config=None, force=False, quiet=False, table_opti
 
     n_pairs = table.n * (table.n - 1) // 2 if pairs is None else pairs[0].size
     ver, stage_seconds["verification"] = _stage(
-        "verification", lambda: _verification(table, cfg, pairs), notes, quiet,
+        "verification", lambda: _verification(table, cfg, pairs, engine), notes, quiet,
         f" over {'all' if pairs is None else 'the listed'} {n_pairs:,} pairs")
     ret, stage_seconds["retrieval"] = _stage("retrieval", lambda: _retrieval(table, cfg), notes, quiet)
     clu = None

@@ -9,31 +9,9 @@ from scipy.stats import mannwhitneyu
 from sklearn.metrics import det_curve, roc_auc_score, roc_curve
 
 import tripletkit.metrics.verification as V
-from _support import four_squares as _four_squares
-
-
-def exact_table(rng, n, k, d, centre, spread, scale):
-    """Unit rows of integers / scale (scale a power of two): float32 products are exact.
-
-    scale=64 gives scores on a grid of 2**-12 (few ties); scale=4 a grid of 1/16 (many ties).
-    """
-    centres = rng.integers(-centre, centre + 1, size=(k, d))
-    labels = rng.integers(0, k, size=n)
-    rows = np.zeros((n, d + 4))
-    for r in range(n):
-        while True:
-            v = centres[labels[r]] + rng.integers(-spread, spread + 1, size=d)
-            if 0 < (v**2).sum() <= scale * scale:
-                break
-        rows[r, :d] = v
-        rows[r, d:] = _four_squares(int(scale * scale - (v**2).sum()))
-    return (rows / scale).astype(np.float32), labels
-
-
-def pairs(x, labels):
-    s = x.astype(np.float64) @ x.astype(np.float64).T
-    i, j = np.triu_indices(len(x), 1)
-    return s[i, j], labels[i] == labels[j]
+from tripletkit.metrics import rates as R
+from tripletkit.metrics.section import report_key
+from _support import lattice_table, pair_scores
 
 
 def sklearn_operating_points(y, s, targets):
@@ -62,8 +40,8 @@ TABLES = {
 @pytest.mark.parametrize("name", sorted(TABLES))
 def test_all_pairs_against_sklearn_roc(name, rng):
     # reference: sklearn.metrics.roc_curve and roc_auc_score on every materialised pair
-    x, labels = exact_table(rng, **TABLES[name])
-    s, y = pairs(x, labels)
+    x, labels = lattice_table(rng, **TABLES[name])
+    s, y, _, _ = pair_scores(x, labels)
     if name == "tied scores":
         assert np.unique(s).size < 40  # the table really is full of ties
     targets = [0.001, 0.01, 0.05, 0.2]
@@ -71,7 +49,7 @@ def test_all_pairs_against_sklearn_roc(name, rng):
     ops, eer, eer_t, (fpr, tpr) = sklearn_operating_points(y, s, targets)
     assert out["genuine_pairs"] == int(y.sum()) and out["impostor_pairs"] == int((~y).sum())
     for x_ in targets:
-        op = out["fnmr_at_fmr"][V._key(x_)]
+        op = out["fnmr_at_fmr"][report_key(x_)]
         if not op["resolvable"]:
             continue
         ref_fnmr, ref_t = ops[x_]
@@ -93,14 +71,14 @@ def test_all_pairs_against_sklearn_roc(name, rng):
 @pytest.mark.parametrize("name", sorted(TABLES))
 def test_counting_function_roc_and_det_against_sklearn(name, rng):
     # reference: sklearn.metrics.roc_curve (every point) and sklearn.metrics.det_curve
-    x, labels = exact_table(rng, **TABLES[name])
-    s, y = pairs(x, labels)
-    counts = V.count_scores(s[y], s[~y])
-    fmr, tmr, thr = V.roc_points(counts)
+    x, labels = lattice_table(rng, **TABLES[name])
+    s, y, _, _ = pair_scores(x, labels)
+    counts = R.count_scores(s[y], s[~y])
+    fmr, tmr, thr = R.roc_points(counts)
     rfpr, rtpr, rthr = roc_curve(y, s, drop_intermediate=False)
     assert np.allclose(fmr, rfpr, atol=1e-12, rtol=0) and np.allclose(tmr, rtpr, atol=1e-12, rtol=0)
     assert np.array_equal(thr[1:], rthr[1:]) and np.isinf(rthr[0]) and thr[0] > s.max()
-    dfmr, dfnmr = V.det_points(counts)
+    dfmr, dfnmr = R.det_points(counts)
     sfpr, sfnr, _ = det_curve(y, s)
     sfpr, sfnr = sfpr[::-1], sfnr[::-1]  # sklearn lists FMR falling; ours rises
     # sklearn trims the flat ends of the curve: its points are a run of ours
@@ -120,7 +98,7 @@ def test_score_arrays_against_sklearn_with_float_ties(rng):
     out = V.verify_scores(g, i, fmr_targets=targets, bootstrap=0)
     ops, eer, eer_t, _ = sklearn_operating_points(y, s, targets)
     for x_ in targets:
-        op = out["fnmr_at_fmr"][V._key(x_)]
+        op = out["fnmr_at_fmr"][report_key(x_)]
         assert abs(op["fnmr"] - ops[x_][0]) <= 1e-12 and op["threshold"] == ops[x_][1]
     assert abs(out["eer"] - eer) <= 1e-4 and abs(out["eer_threshold"] - eer_t) <= 1e-4
     assert abs(out["auc"] - roc_auc_score(y, s)) <= 1e-6
@@ -131,7 +109,7 @@ def test_auc_is_the_mann_whitney_statistic(rng):
     g = rng.integers(0, 50, 700) / 50
     i = rng.integers(0, 40, 900) / 50
     u = mannwhitneyu(g, i, alternative="two-sided").statistic
-    assert V.auc(V.count_scores(g, i)) == pytest.approx(u / (g.size * i.size), abs=1e-15)
+    assert R.auc(R.count_scores(g, i)) == pytest.approx(u / (g.size * i.size), abs=1e-15)
 
 
 @pytest.mark.parametrize("d_prime", [1.0, 2.0])
@@ -142,13 +120,13 @@ def test_binormal_eer_and_auc(d_prime, rng):
     n = 200_000
     g = rng.normal(d_prime, 1.0, n)
     i = rng.normal(0.0, 1.0, n)
-    counts = V.count_scores(g, i)
+    counts = R.count_scores(g, i)
     nd = NormalDist()
-    eer, thr = V.equal_error_rate(counts)
+    eer, thr = R.equal_error_rate(counts)
     # the standard error of an empirical rate near 0.3 from 2e5 scores is ~0.001; allow 5 of them
     assert abs(eer - nd.cdf(-d_prime / 2)) < 0.005
     assert abs(thr - d_prime / 2) < 0.02  # by symmetry the EER threshold is the midpoint
-    assert abs(V.auc(counts) - nd.cdf(d_prime / math.sqrt(2))) < 0.004
+    assert abs(R.auc(counts) - nd.cdf(d_prime / math.sqrt(2))) < 0.004
     # the report gives the same numbers
     out = V.verify_scores(g, i, bootstrap=0)
-    assert out["eer"] == eer and out["auc"] == V.auc(counts)
+    assert out["eer"] == eer and out["auc"] == R.auc(counts)

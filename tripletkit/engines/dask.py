@@ -19,19 +19,18 @@ of the table; when invalid rows are dropped only the driver knows them, and it r
 Scoring (:func:`score_on_cluster`)
 ----------------------------------
 One driver task reads and validates the table on a worker (the same code as in one process) and
-runs :func:`tripletkit.evaluate.score` there, with the all-pairs verification handed to
-:func:`tripletkit.metrics.verification.block_runner`: its row blocks (a block of rows against
-all later rows, the upper triangle) go out in groups of about equal work as Dask tasks; each
-task returns its bin counts and genuine scores, the counts are summed, and in the second pass
-each task returns the exact impostor scores of the bins that hold an operating point and its
-window counts, which are merged. Retrieval, clustering and health run in the driver. The
-identity-sorted, scaled matrix is scattered to every worker once (each block multiplies a block
-of rows with all later rows).
+runs :func:`tripletkit.evaluate.score` there with a :class:`DaskEngine`: the all-pairs
+verification's plan (:mod:`tripletkit.metrics.allpairs`) runs its groups of row blocks as Dask
+tasks, the identity-sorted, scaled matrix scattered to every worker once. Each task of the first
+pass returns its bin counts, genuine scores and highest impostor scores, merged in the driver; the
+exact impostor scores of the bins that hold an operating point come from those, or from a second
+pass whose tasks return them with their window counts. Retrieval, clustering and health run in
+the driver.
 
 The scores are exact cosines (:mod:`tripletkit._exact`), so the report is identical to the
 single-process one whatever the workers' BLAS or block shapes, except ``verification.passes``
-(always 2 here; the single-process plan may list the refined bins from impostors kept in its
-first pass) and the timings.
+(the groups differ from one process's, and each keeps its own highest impostors) and the
+timings.
 
 Mining (:func:`mine_on_cluster`)
 --------------------------------
@@ -92,7 +91,6 @@ import dataclasses
 import functools
 import hashlib
 import logging
-import operator
 import os
 import shutil
 import sys
@@ -112,7 +110,7 @@ from ..config import ComputeConfig
 from ..index import SearchIndex, _csr, build_index
 from ..tables.embeddings import EmbeddingTable
 
-__all__ = ["LOCAL_CLUSTER", "PART_ROWS", "cluster", "mine_on_cluster", "score_on_cluster"]
+__all__ = ["LOCAL_CLUSTER", "PART_ROWS", "DaskEngine", "cluster", "mine_on_cluster", "score_on_cluster"]
 
 #: The ``scheduler`` value that starts a local cluster for the run.
 LOCAL_CLUSTER = "local-cluster"
@@ -404,116 +402,90 @@ def _digest(rows):
 # ---------------------------------------------------------------------------------------------
 # scoring
 # ---------------------------------------------------------------------------------------------
-def _cost_groups(blocks, parts):
-    """Consecutive row blocks in ``parts`` groups of about equal products (a block's products are
-    its rows times the rows from its first on)."""
-    starts = blocks.block_starts()
-    cost = np.array([(min(blocks.n, r0 + blocks.b) - r0) * (blocks.n - r0) for r0 in starts], np.float64)
-    edges = np.searchsorted(np.cumsum(cost), np.linspace(0, cost.sum(), parts + 1)[1:-1], side="left")
-    return [g.tolist() for g in np.split(np.array(starts), np.unique(edges + 1)) if g.size]
+def _not_stopped():
+    return False
 
 
-def _count_task(xs, codes, gcodes, b, starts, limits):
-    from ..metrics import verification
+def _run_task(task, shared, item, limits, as_tuple):
+    """One task of a plan on a worker: the client's thread limits, and one BLAS thread per task
+    (as in the threads of the local engine). It is never stopped from inside: the driver stops
+    waiting instead."""
+    from threadpoolctl import threadpool_limits
 
-    blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
-    with _limits(limits):
-        return verification.count_blocks(blocks, starts)
-
-
-def _refine_task(xs, codes, gcodes, b, starts, args, chunk, use_table, limits):
-    from ..metrics import verification
-
-    blocks = verification._Blocks.arranged(xs, codes, gcodes, b)
-    ref = verification._Refiner(*args)
-    with _limits(limits):
-        verification.refine_blocks(blocks, starts, ref, chunk, use_table)
-    return ref.export()
+    with _limits(limits), threadpool_limits(limits=1, user_api="blas"):
+        return task(tuple(shared) if as_tuple else shared, item, _not_stopped)
 
 
-def _add(a, b):
-    return a + b
+class DaskEngine:
+    """Run a plan's tasks on a Dask cluster, from a task that holds a worker client (the driver).
 
+    Parameters
+    ----------
+    client : distributed.Client
+        The driver's client (``distributed.worker_client()``).
+    threads : int
+        Groups a plan should cut its work into (``compute.partitions``, else twice the workers).
+    limits : dict
+        BLAS and OpenMP thread counts of the client, applied in every task.
+    cancelled : callable, optional
+        Tells whether the driver was let go (see :func:`_watch_driver`): the run then stops while
+        it waits on its tasks.
+    no_workers_timeout : float
+        Seconds a wait goes on without any worker (see :func:`_gather`).
+    """
 
-def _tree_sum(client, futures, wait):
-    """Sum arrays held by workers pairwise on the workers; the client fetches only the total
-    (``wait(futures)`` gathers, see :meth:`_BlockRunner._gather`)."""
-    while len(futures) > 1:
-        nxt = [client.submit(_add, futures[i], futures[i + 1], pure=False) for i in range(0, len(futures) - 1, 2)]
-        if len(futures) % 2:
-            nxt.append(futures[-1])
-        futures = nxt
-    return wait(futures[:1])[0]
+    name = "dask"
 
-
-class _BlockRunner:
-    """Runs the passes of ``verify_all_pairs`` as Dask tasks (see ``verification.block_runner``)."""
-
-    def __init__(self, client, parts, limits, cancelled=None, no_workers_timeout=ComputeConfig.no_workers_timeout):
+    def __init__(self, client, threads, limits, cancelled=None, no_workers_timeout=ComputeConfig.no_workers_timeout):
         self.client = client
-        self.parts = parts
+        self.threads = int(threads)
         self.limits = limits
-        self.data = None
         self.no_workers_timeout = no_workers_timeout
         self._check = _stopper(cancelled or (lambda: False))
+        self._sent = {}
 
-    def _gather(self, futures):
-        return _gather(self.client, futures, self.no_workers_timeout, self._check)
+    def _scattered(self, obj):
+        """``obj`` on every worker, sent once however many maps share it (scalars go with the tasks)."""
+        if obj is None or isinstance(obj, (bool, int, float, str)):
+            return obj
+        if id(obj) not in self._sent:
+            (future,) = self.client.scatter([obj], broadcast=True, hash=False)
+            self._sent[id(obj)] = (obj, future)  # obj kept, so that its id is not reused
+        return self._sent[id(obj)][1]
 
-    def _share(self, blocks):
+    def map(self, task, shared, items):
+        """``task(shared, item, stopped)`` for every item as Dask tasks; the results in item order.
+
+        ``shared`` is scattered to every worker once (a tuple item by item, so that what two maps
+        share is sent once); one task is submitted per item. The results are gathered one at a
+        time as the caller iterates over them, so the driver holds one at a time.
+        """
         self._check()
-        if self.data is None:
-            xs, codes = self.client.scatter([blocks.xs, blocks.codes], broadcast=True, hash=False)
-            gcodes = None
-            if blocks.gcodes is not None:
-                gcodes = self.client.scatter([blocks.gcodes], broadcast=True, hash=False)[0]
-            self.data = (xs, codes, gcodes, blocks.b)
-            self.groups = _cost_groups(blocks, self.parts)
-        return self.data
+        as_tuple = isinstance(shared, tuple)
+        sent = [self._scattered(obj) for obj in shared] if as_tuple else self._scattered(shared)
+        futures = [self.client.submit(_run_task, task, sent, item, self.limits, as_tuple, pure=False)
+                   for item in items]
+        return self._in_order(futures)
 
-    def first_pass(self, blocks):
-        data = self._share(blocks)
-        futs = [self.client.submit(_count_task, *data, g, self.limits, pure=False) for g in self.groups]
-        hist = _tree_sum(self.client, [self.client.submit(operator.itemgetter(0), f, pure=False) for f in futs],
-                         self._gather)
-        parts = [self.client.submit(operator.itemgetter(1, 2, 3), f, pure=False) for f in futs]
-        gvals, gids, ggrps = [], [], []
-        for f in parts:  # in block order, one at a time
-            v, i, g = self._gather([f])[0]
-            gvals.append(v)
-            gids.append(i)
-            if g is not None:
-                ggrps.append(g)
-        del futs, parts
-        from ..metrics.verification import _genuine_arrays
-
-        return (hist, *_genuine_arrays(gvals, gids, ggrps))
-
-    def second_pass(self, blocks, ref, chunk, use_table):
-        if ref.smin is None:
-            return  # no bin to list: the pass would look at nothing
-        data = self._share(blocks)
-        args = self.client.scatter([ref.args], broadcast=True, hash=False)[0]
-        futs = [self.client.submit(_refine_task, *data, g, args, chunk, use_table, self.limits, pure=False)
-                for g in self.groups]
-        for f in futs:  # absorbed in block order, one at a time (window counts can be large)
-            ref.absorb(self._gather([f])[0])
-            f.release()
+    def _in_order(self, futures):
+        for future in futures:
+            (result,) = _gather(self.client, [future], self.no_workers_timeout, self._check)
+            future.release()
+            yield result
 
 
 def _score_task(path, options, expect, config, limits, parts, no_workers_timeout):
     from distributed import worker_client
 
     from ..evaluate import score
-    from ..metrics.verification import block_runner
 
     cancelled = _watch_driver()
     table = _read_table(path, options, expect)
-    with (_limits(limits), worker_client() as client,
-          block_runner(_BlockRunner(client, parts, limits, cancelled, no_workers_timeout))):
+    with _limits(limits), worker_client() as client:
+        engine = DaskEngine(client, parts, limits, cancelled, no_workers_timeout)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # the report lists them; the client issues them again
-            return score(table, config=config, quiet=True)
+            return score(table, config=config, quiet=True, engine=engine)
 
 
 def score_on_cluster(source, out=None, *, config=None, compute, force=False, quiet=False, table_options=None):

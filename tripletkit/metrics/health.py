@@ -32,7 +32,7 @@ import numpy as np
 
 from .._errors import TripletkitError, TripletkitWarning
 from .._exact import GRID_BITS, snap
-from .._validate import as_codes, as_embeddings
+from .._validate import UNIT_NORM_TOLERANCE, as_codes, as_embeddings
 
 __all__ = ["mean_impostor_cosine", "effective_dimension", "collapsed", "health_metrics",
            "COLLAPSE_MIN_DIMENSION", "COLLAPSE_MAX_IMPOSTOR_COSINE"]
@@ -45,7 +45,7 @@ _DIM_BITS = 20
 
 def _check_unit(x):
     norms = np.sqrt(np.einsum("ij,ij->i", x, x, dtype=np.float64))
-    bad = np.abs(norms - 1.0) > 1e-3
+    bad = np.abs(norms - 1.0) > UNIT_NORM_TOLERANCE
     if bad.any():
         raise TripletkitError(
             f"embeddings have {int(bad.sum())} rows whose L2 norm is not 1 (first row positions: "

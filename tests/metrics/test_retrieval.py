@@ -6,13 +6,7 @@ import pytest
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.metrics import retrieval as R
 from tripletkit.metrics import retrieval_metrics
-
-
-def unit_rows(rng, n, d, k, noise=1.0):
-    centres = rng.standard_normal((k, d))
-    labels = rng.integers(0, k, n)
-    x = centres[labels] + noise * rng.standard_normal((n, d))
-    return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), labels
+from _support import clustered_rows
 
 
 def brute_force(x, labels, ks):
@@ -37,7 +31,7 @@ def brute_force(x, labels, ks):
 
 
 def test_matches_brute_force(rng):
-    x, labels = unit_rows(rng, 300, 8, 25)
+    x, labels = clustered_rows(rng, 300, 8, 25)
     labels[0] = 999  # one singleton query, skipped
     out = retrieval_metrics(x, labels, ks=(1, 2, 5, 10))
     rec, rp, ap, q = brute_force(x, labels, (1, 2, 5, 10))
@@ -49,7 +43,7 @@ def test_matches_brute_force(rng):
 
 
 def test_blocked_equals_one_shot(rng):
-    x, labels = unit_rows(rng, 400, 8, 12)  # identities of ~33 rows: deep rankings
+    x, labels = clustered_rows(rng, 400, 8, 12)  # identities of ~33 rows: deep rankings
     ref = retrieval_metrics(x, labels, block_rows=400)
     for rows in (1, 13, 128):
         assert retrieval_metrics(x, labels, block_rows=rows) == ref
@@ -95,7 +89,7 @@ def test_float32_preselection_is_widened_to_the_exact_ranking(rng):
 
 
 def test_invariant_to_row_order_and_label_names(rng):
-    x, labels = unit_rows(rng, 200, 6, 20)
+    x, labels = clustered_rows(rng, 200, 6, 20)
     perm = rng.permutation(200)
     a = retrieval_metrics(x, labels)
     b = retrieval_metrics(x[perm], np.array([f"seal-{v}" for v in labels])[perm])
@@ -103,14 +97,14 @@ def test_invariant_to_row_order_and_label_names(rng):
 
 
 def test_all_singletons_warn(rng):
-    x, _ = unit_rows(rng, 10, 4, 2)
+    x, _ = clustered_rows(rng, 10, 4, 2)
     with pytest.warns(TripletkitWarning, match="retrieval: no query"):
         out = retrieval_metrics(x, np.arange(10))
     assert out["map_at_r"] is None and out["skipped_queries"] == 10
 
 
 def test_errors(rng):
-    x, labels = unit_rows(rng, 10, 4, 2)
+    x, labels = clustered_rows(rng, 10, 4, 2)
     with pytest.raises(TripletkitError, match="ks must be whole numbers >= 1"):
         retrieval_metrics(x, labels, ks=(0, 5))
     with pytest.raises(TripletkitError, match="labels has 3 entries but there are 10 rows"):

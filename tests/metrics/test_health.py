@@ -5,11 +5,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.metrics import health as H
-
-
-def unit_rows(rng, n, d, k):
-    x = rng.standard_normal((n, d)) + 0.5
-    return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), rng.integers(0, k, n)
+from _support import clustered_rows, pair_scores
 
 
 def test_mean_impostor_cosine_matches_every_pair(rng):
@@ -19,14 +15,13 @@ def test_mean_impostor_cosine_matches_every_pair(rng):
 
     from tripletkit._exact import snap
 
-    x, labels = unit_rows(rng, 300, 8, 30)
-    s = snap(x) @ snap(x).T
-    i, j = np.triu_indices(300, 1)
-    imp = labels[i] != labels[j]
-    brute = math.fsum(s[i[imp], j[imp]].tolist()) / int(imp.sum())
+    x, labels = clustered_rows(rng, 300, 8, 30)
+    exact, genuine, _, _ = pair_scores(snap(x), labels)
+    brute = math.fsum(exact[~genuine].tolist()) / int((~genuine).sum())
     assert H.mean_impostor_cosine(x, labels) == pytest.approx(brute, abs=1e-15)
     assert H.mean_impostor_cosine(x, labels, block_rows=7) == H.mean_impostor_cosine(x, labels)
-    plain = (x.astype(np.float64) @ x.astype(np.float64).T)[i[imp], j[imp]].mean()
+    plain, genuine, _, _ = pair_scores(x, labels)
+    plain = plain[~genuine].mean()
     assert H.mean_impostor_cosine(x, labels) == pytest.approx(plain, abs=1e-7)
 
 
@@ -62,7 +57,7 @@ def test_collapse_rule():
 
 
 def test_health_flags_a_collapsed_run(rng):
-    x, labels = unit_rows(rng, 200, 16, 20)
+    x, labels = clustered_rows(rng, 200, 16, 20)
     out = H.health_metrics(x, labels)
     assert out["collapsed"] is False and "our rule of thumb" in out["rule"]
     # every row nearly the same direction: high impostor cosine, low dimension
@@ -73,7 +68,7 @@ def test_health_flags_a_collapsed_run(rng):
 
 
 def test_degenerate_and_bad_input(rng):
-    x, _ = unit_rows(rng, 10, 4, 1)
+    x, _ = clustered_rows(rng, 10, 4, 1)
     with pytest.warns(TripletkitWarning, match="health: no impostor pairs"):
         assert H.mean_impostor_cosine(x, np.zeros(10, int)) is None
     with pytest.warns(TripletkitWarning, match="no variance"):

@@ -5,13 +5,12 @@ import pytest
 
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.metrics import clustering as C
+from _support import clustered_rows
 
 
 def blobs(rng, k, per, d=16, noise=0.05):
-    centres = rng.standard_normal((k, d))
-    labels = np.repeat(np.arange(k), per)
-    x = centres[labels] + noise * rng.standard_normal((k * per, d))
-    return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), labels
+    """``k`` identities of ``per`` rows each, in order."""
+    return clustered_rows(rng, k * per, d, k, noise, labels=np.repeat(np.arange(k), per))
 
 
 def test_contingency_by_hand():
