@@ -154,31 +154,32 @@ def _align(ref, run, where):
 # one run
 # ---------------------------------------------------------------------------------------------
 def _mining_stats(table, margin, mining_config):
+    """The miner's statistics on ``table`` at ``margin`` (nothing is written)."""
     from .mining import mine
 
-    summary = mine(table, None, config=dataclasses.replace(mining_config, margin=margin), quiet=True)
-    d = jsonable(summary)
+    summary = jsonable(mine(table, None, config=dataclasses.replace(mining_config, margin=margin), quiet=True))
     return {
-        "triplets": d.get("triplets"),
-        "anchors": d.get("anchors"),
-        "active_fraction": d.get("active_fraction"),
-        "regimes": {r: (d.get("regimes") or {}).get(r, 0) for r in REGIMES},
-        "pairs_without_negative": d.get("pairs_without_negative"),
+        "triplets": summary.get("triplets"),
+        "anchors": summary.get("anchors"),
+        "active_fraction": summary.get("active_fraction"),
+        "regimes": {r: (summary.get("regimes") or {}).get(r, 0) for r in REGIMES},
+        "pairs_without_negative": summary.get("pairs_without_negative"),
     }
 
 
 def _headline(report):
-    v = report.get("verification") or {}
-    r = report.get("retrieval") or {}
-    c = report.get("clustering") or {}
+    """The numbers of a run's report that the sweep puts side by side."""
+    verification = report.get("verification") or {}
+    retrieval = report.get("retrieval") or {}
+    clustering = report.get("clustering") or {}
     fnmr = {}
-    for key, entry in (v.get("fnmr_at_fmr") or {}).items():
+    for key, entry in (verification.get("fnmr_at_fmr") or {}).items():
         entry = entry or {}
         fnmr[key] = {"fnmr": entry.get("fnmr"), "ci": entry.get("ci"), "threshold": entry.get("threshold")}
     return jsonable({
-        "eer": v.get("eer"), "auc": v.get("auc"), "fnmr_at_fmr": fnmr,
-        "recall_at_1": (r.get("recall_at_k") or {}).get("1"), "map_at_r": r.get("map_at_r"),
-        "purity": c.get("purity"), "nmi": c.get("nmi"),
+        "eer": verification.get("eer"), "auc": verification.get("auc"), "fnmr_at_fmr": fnmr,
+        "recall_at_1": (retrieval.get("recall_at_k") or {}).get("1"), "map_at_r": retrieval.get("map_at_r"),
+        "purity": clustering.get("purity"), "nmi": clustering.get("nmi"),
     })
 
 

@@ -1,12 +1,11 @@
 """How every report spells a number: rates, counts, intervals, differences and Markdown tables.
 
-The score report, the sweep report, their plots, the sweep's verdict and the progress lines of
-both commands format numbers only through these functions, so that one value reads the same
-everywhere: a rate is a percentage with two decimals and no space (``2.00%``), a count has
-thousands separators (``1,290``), a rate's interval is ``lo – hi`` in the rate's spelling, a
-signed difference has four significant digits and its interval is bracketed (``[-0.002862,
-0.002936]``: a dash between signed bounds would read as a minus). A value that is missing or not
-finite reads ``n/a``.
+The score report, the sweep report, their plots, the sweep's verdict and its progress lines
+format numbers only through these functions, so that one value reads the same everywhere: a rate
+is a percentage with two decimals and no space (``2.00%``), a count has thousands separators
+(``1,290``), a rate's interval is ``lo – hi`` in the rate's spelling, and a signed difference has
+four significant digits with its interval in brackets (``[-0.002862, 0.002936]``: a dash between
+signed bounds would read as a minus). A missing or non-finite value reads ``n/a``.
 """
 
 from __future__ import annotations
