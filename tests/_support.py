@@ -5,7 +5,9 @@
 - :func:`clustered_rows`: seeded unit rows scattered around one random centre per identity;
 - :func:`pair_scores`: every pair's float64 score with its genuine flag, the brute force of
   verification;
-- :func:`distances` and :func:`regime_name`: the brute force of the regime boundaries.
+- :func:`distances` and :func:`regime_name`: the brute force of the regime boundaries;
+- :func:`identity_clusters`: rows in blocks of one identity around its centre (sweeps);
+- :func:`check_image`: a PNG file that holds a drawing (reports).
 """
 
 import math
@@ -84,3 +86,43 @@ def regime_name(d_ap, d_an, margin):
     if d_an < d_ap + margin:
         return "semi-hard"
     return "easy"
+
+
+# ---------------------------------------------------------------------------------------------
+# sweeps and their paired comparison
+# ---------------------------------------------------------------------------------------------
+def identity_clusters(rng, identities, per, d, noise, first_label=0, centres=None):
+    """(labels, rows, centres): ``per`` rows around a standard normal centre per identity (not normalised).
+
+    Labels run ``first_label, first_label + 1, ...`` in blocks of ``per``; pass ``centres`` to draw
+    another model's rows of the same identities.
+    """
+    centres = rng.normal(size=(identities, d)) if centres is None else centres
+    labels = np.repeat(np.arange(identities), per)
+    rows = centres[labels] + noise * rng.normal(size=(labels.size, d))
+    return labels + first_label, rows, centres
+
+
+# ---------------------------------------------------------------------------------------------
+# reports
+# ---------------------------------------------------------------------------------------------
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+def check_image(path, min_width=700, min_height=300):
+    """Assert that ``path`` is a PNG of at least the given size holding a drawing (not a blank canvas)."""
+    import struct
+    from pathlib import Path
+
+    import matplotlib.image
+
+    data = Path(path).read_bytes()
+    assert data[:8] == PNG_SIGNATURE, f"{path} is not a PNG"
+    assert data[12:16] == b"IHDR"
+    width, height = struct.unpack(">II", data[16:24])  # from the IHDR chunk
+    assert width >= min_width and height >= min_height
+    pixels = matplotlib.image.imread(str(path))
+    assert pixels.shape[:2] == (height, width)
+    # something was drawn: many distinct colours, not a blank canvas
+    flat = (pixels[..., :3] * 255).astype(np.uint8).reshape(-1, 3)
+    assert len(np.unique(flat, axis=0)) > 20

@@ -855,14 +855,14 @@ def test_demo_refuses_an_output_folder_that_appears_meanwhile(tmp_path, monkeypa
     from tripletkit import scenario
 
     out = tmp_path / "demo"
-    stage = scenario._stage
+    say = scenario.say
 
-    def stage_and_race(progress, text):
-        stage(progress, text)
+    def say_and_race(verb, text, quiet=False):
+        say(verb, text, quiet)
         if text.startswith("scoring the held-out"):
             out.mkdir()  # another run's folder, created (empty) while this demo is half way
 
-    monkeypatch.setattr(scenario, "_stage", stage_and_race)
+    monkeypatch.setattr(scenario, "say", say_and_race)
     with pytest.raises(TripletkitError, match=r"^output '.*demo' already exists: it appeared while this run was "
                                               r"writing"):
         scenario.demo(out, quiet=True, sweep=False)

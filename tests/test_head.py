@@ -10,7 +10,7 @@ import pytest
 
 from tripletkit._errors import TripletkitError, TripletkitWarning
 from tripletkit.config import HeadConfig, MiningConfig
-from tripletkit.head import ProjectionHead, fit_head
+from tripletkit.head import ProjectionHead, describe_epoch, fit_head
 from tripletkit.losses import triplet_loss
 from tripletkit.tables.embeddings import EmbeddingTable
 
@@ -74,18 +74,6 @@ def test_gradient_matches_central_differences(rng, hidden, distance):
             num[idx] = (up - down) / (2 * eps)
         np.testing.assert_allclose(grads[name], num, rtol=1e-5, atol=1e-8, err_msg=name)
         assert np.abs(num).max() > 1e-4  # the check is not vacuous
-
-
-@pytest.mark.parametrize("rows, k, n", [(5, 4, 3), (700, 64, 16), (3000, 128, 16), (700, 64, 128)])
-def test_blocked_products_equal_one_shot(rng, rows, k, n):
-    # The head cuts its products into row blocks (to stay single-threaded); the blocked results
-    # must equal the one-shot products, for one block and for many.
-    from tripletkit.head import _matmul, _matmul_tn, _rows_per_block
-
-    A, B, G = rng.normal(size=(rows, k)), rng.normal(size=(k, n)), rng.normal(size=(rows, n))
-    np.testing.assert_allclose(_matmul(A, B), A @ B, rtol=1e-12, atol=1e-12)
-    np.testing.assert_allclose(_matmul_tn(A, G), A.T @ G, rtol=1e-12, atol=1e-10)
-    assert (rows > _rows_per_block(k, n)) == (rows >= 700)  # both paths are exercised
 
 
 def test_raw_outputs_by_hand(rng):
@@ -163,6 +151,17 @@ def test_progress_callback_and_stderr(rng, capsys):
     fit_head(table, 0.2, HeadConfig(dim=3, epochs=2))
     err = capsys.readouterr().err
     assert "epoch 1/2" in err and "epoch 2/2" in err and "mining" in err
+    assert err.startswith("[head] margin 0.2 epoch 1/2: loss ")
+
+
+def test_describe_epoch_by_hand():
+    record = {"epoch": 3, "loss": 0.031234, "loss_after": 0.02625, "triplets": 5917, "active_fraction": 0.5,
+              "seconds": {"mining": 0.956, "gradient": 0.271, "update": 0.0149}}
+    assert describe_epoch(0.2, record, 4) == (
+        "margin 0.2 epoch 3/4: loss 0.0312 (after the epoch 0.0262), 5917 triplets, active 0.500 "
+        "(mining 0.96 s, gradient 0.27 s, update 0.01 s)")
+    empty = dict(record, loss=None, loss_after=None, triplets=0, active_fraction=None)
+    assert "loss n/a, 0 triplets, active n/a" in describe_epoch(0.05, empty, 4)
 
 
 def test_epoch_without_triplets_makes_no_update(rng):

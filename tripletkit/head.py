@@ -1,33 +1,21 @@
 """A small projection head fitted with the triplet loss (numpy only), for margin sweeps.
 
-The head maps frozen feature vectors (the output of a backbone that is not trained) to unit
-embeddings:
+The head maps frozen feature vectors to unit embeddings: rows are L2-normalised, standardised with
+the training rows' per-feature mean and spread, mapped linearly (``z = s W``) or through one
+hidden ReLU layer (``z = relu(s W1 + b1) W2 + b2``) and L2-normalised. :func:`fit_head` trains it
+as a user would train a real model with this package: every epoch it mines triplets on the head's
+outputs with :func:`tripletkit.mining.mine`, back-propagates the gradient of
+:func:`tripletkit.losses.triplet_loss_grad` through the layers by hand and steps with an
+optimiser of :mod:`tripletkit.optimizers`.
 
-1. each input row is L2-normalised (the embedding-table contract) and standardised with the
-   per-feature mean and standard deviation of the training rows (fixed when the head is created);
-2. a linear map ``z = s W`` (``W`` of shape d_in x dim), or one hidden ReLU layer
-   ``z = relu(s W1 + b1) W2 + b2``;
-3. L2 normalisation of ``z``.
-
-:func:`fit_head` trains it the way a user would train a real model with this package: every
-epoch it embeds the training rows with the current head, mines triplets on those embeddings with
-:func:`tripletkit.mining.mine` (regimes, select, ... from the ``[mining]`` section, margin from the
-sweep), then runs minibatches of triplets through :func:`tripletkit.loss.triplet_loss_grad`, whose
-gradient with respect to the raw (pre-normalisation) outputs ``z`` is back-propagated through the
-layers by hand, and steps with Adam [1]_ or SGD with momentum [2]_.
-
-Determinism: parameters are float64, the initialisation and the minibatch order come from
-``np.random.default_rng(seed)``, the per-epoch mining seed is ``mining.seed + epoch``, and
-gradients of repeated rows are summed in a fixed order (``np.add.at``), so the same inputs,
-configs and seed give the same weights bit for bit on one machine and numpy/BLAS build.
+Parameters are float64, the initialisation and the minibatch order come from one seeded
+generator, the per-epoch mining seed is ``mining.seed + epoch``, and gradients of repeated rows are
+summed in a fixed order (``np.add.at``): the same inputs, configs and seed give the same weights
+bit for bit on one machine and numpy/BLAS build.
 
 References
 ----------
-.. [1] D. P. Kingma, J. Ba, "Adam: A Method for Stochastic Optimization", ICLR 2015 (Algorithm 1:
-   beta1 = 0.9, beta2 = 0.999, eps = 1e-8, bias-corrected moments).
-.. [2] I. Sutskever, J. Martens, G. Dahl, G. Hinton, "On the importance of initialization and
-   momentum in deep learning", ICML 2013 (classical momentum, eq. 1-2).
-.. [3] K. He, X. Zhang, S. Ren, J. Sun, "Delving Deep into Rectifiers", ICCV 2015 (the
+.. [1] K. He, X. Zhang, S. Ren, J. Sun, "Delving Deep into Rectifiers", ICCV 2015 (the
    N(0, 2 / fan_in) initialisation of a ReLU layer).
 """
 
@@ -35,65 +23,28 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import sys
 import time
 import warnings
 from pathlib import Path
 
 import numpy as np
 
+from ._blocked import matmul, matmul_tn
 from ._errors import TripletkitError, TripletkitWarning
-from ._io import atomic_path
-from ._validate import as_embeddings, row_norms
-from ._validate import check_margin
+from ._io import atomic_path, say
+from ._validate import as_embeddings, check_margin, row_norms, whole_number
 from .config import HeadConfig, MiningConfig
 from .losses import REGIMES, triplet_loss, triplet_loss_grad
+from .optimizers import make_optimizer
 
-__all__ = ["ProjectionHead", "fit_head", "HeadDiverged"]
+__all__ = ["ProjectionHead", "fit_head", "HeadDiverged", "describe_epoch"]
 
 #: Written into every saved head; :meth:`ProjectionHead.load` refuses other formats.
 _FORMAT = "tripletkit-projection-head-1"
 _LINEAR_KEYS = ("weight",)
 _HIDDEN_KEYS = ("weight_1", "bias_1", "weight_2", "bias_2")
-_ADAM_BETA1, _ADAM_BETA2, _ADAM_EPS = 0.9, 0.999, 1e-8
 # Features whose training spread is below this are only centred, not scaled (constant pixels).
 _MIN_SCALE = 1e-8
-
-
-#: Multiply-adds per matrix product call. OpenBLAS runs a product single-threaded below about
-#: 2**18 multiply-adds (its GEMM threading threshold) and with every core above it. The head's
-#: products are small (a minibatch of a few hundred rows times d_in x dim), and for those the
-#: threads' start-up and synchronisation dominate: about 10x slower than one thread on an idle
-#: 2-core machine and up to 100x on a loaded one (measured, see docs/benchmarks_head.md). So
-#: products are cut into row blocks under the threshold; the blocks depend only on the shapes,
-#: so results stay deterministic.
-_BLOCK_MACS = 1 << 18
-
-
-def _rows_per_block(k, n):
-    return max(1, _BLOCK_MACS // max(1, k * n))
-
-
-def _matmul(A, B):
-    """``A @ B`` computed in row blocks of ``A`` (see :data:`_BLOCK_MACS`)."""
-    r = _rows_per_block(A.shape[1], B.shape[1])
-    if A.shape[0] <= r:
-        return A @ B
-    out = np.empty((A.shape[0], B.shape[1]), dtype=np.result_type(A, B))
-    for s in range(0, A.shape[0], r):
-        np.matmul(A[s:s + r], B, out=out[s:s + r])
-    return out
-
-
-def _matmul_tn(A, G):
-    """``A.T @ G`` accumulated over row blocks of ``A`` and ``G`` (see :data:`_BLOCK_MACS`)."""
-    r = _rows_per_block(A.shape[1], G.shape[1])
-    if A.shape[0] <= r:
-        return A.T @ G
-    out = np.zeros((A.shape[1], G.shape[1]), dtype=np.result_type(A, G))
-    for s in range(0, A.shape[0], r):
-        out += A[s:s + r].T @ G[s:s + r]
-    return out
 
 
 class HeadDiverged(TripletkitError):
@@ -112,11 +63,6 @@ def _finite(arrays, what):
     """Raise :class:`HeadDiverged` unless every array holds finite numbers only."""
     if not all(np.isfinite(a).all() for a in arrays):
         raise HeadDiverged(f"{what} overflowed to Inf/NaN")
-
-
-def _unit_rows(X, name):
-    """Validated float64 copy of ``X`` with unit rows."""
-    return as_embeddings(X, name, normalise=True, dtype=np.float64)
 
 
 class ProjectionHead:
@@ -200,12 +146,12 @@ class ProjectionHead:
         Notes
         -----
         Weights are Gaussian with variance 1 / fan_in (linear layers) or 2 / fan_in (the ReLU
-        layer, [3]_), biases 0, so that the outputs start at a similar scale whatever d_in is
+        layer, [1]_), biases 0, so that the outputs start at a similar scale whatever d_in is
         (the scale of ``z`` does not change the loss, which normalises it, but it sets the size of
         the gradient).
         """
-        dim, hidden = _positive_int(dim, "dim"), _positive_int(hidden, "hidden", zero=True)
-        S = _unit_rows(X, "head inputs")
+        dim, hidden = whole_number(dim, "dim", low=1), whole_number(hidden, "hidden", low=0)
+        S = as_embeddings(X, "head inputs", normalise=True, dtype=np.float64)
         rng = np.random.default_rng(seed)
         shift = S.mean(axis=0)
         scale = S.std(axis=0)
@@ -229,7 +175,7 @@ class ProjectionHead:
     # -- forward and backward ----------------------------------------------------------------
     def standardise(self, X):
         """L2-normalise the rows of ``X`` and standardise them: float64 (n, d_in)."""
-        S = _unit_rows(X, "head inputs")
+        S = as_embeddings(X, "head inputs", normalise=True, dtype=np.float64)
         if S.shape[1] != self.d_in:
             raise TripletkitError(
                 f"head inputs have dimension {S.shape[1]} but the head was fitted on dimension {self.d_in}; "
@@ -245,11 +191,11 @@ class ProjectionHead:
         p = self.params
         with np.errstate(over="ignore", invalid="ignore"):
             if self.hidden == 0:
-                Z, cache = _matmul(S, p["weight"]), (S,)
+                Z, cache = matmul(S, p["weight"]), (S,)
             else:
-                pre = _matmul(S, p["weight_1"]) + p["bias_1"]
+                pre = matmul(S, p["weight_1"]) + p["bias_1"]
                 H = np.maximum(pre, 0.0)
-                Z, cache = _matmul(H, p["weight_2"]) + p["bias_2"], (S, pre, H)
+                Z, cache = matmul(H, p["weight_2"]) + p["bias_2"], (S, pre, H)
         _finite([Z], "the projection head's raw outputs")
         return Z, cache
 
@@ -257,13 +203,13 @@ class ProjectionHead:
         """Gradients of the trained parameters from dL/dz (float64 (n, dim))."""
         if self.hidden == 0:
             (S,) = cache
-            return {"weight": _matmul_tn(S, dZ)}
+            return {"weight": matmul_tn(S, dZ)}
         S, pre, H = cache
         p = self.params
-        dH = _matmul(dZ, p["weight_2"].T)
+        dH = matmul(dZ, p["weight_2"].T)
         dpre = np.where(pre > 0.0, dH, 0.0)  # ReLU subgradient 0 at 0
-        return {"weight_1": _matmul_tn(S, dpre), "bias_1": dpre.sum(axis=0),
-                "weight_2": _matmul_tn(H, dZ), "bias_2": dZ.sum(axis=0)}
+        return {"weight_1": matmul_tn(S, dpre), "bias_1": dpre.sum(axis=0),
+                "weight_2": matmul_tn(H, dZ), "bias_2": dZ.sum(axis=0)}
 
     def raw(self, X):
         """Raw outputs z of inputs ``X`` (float64 (n, dim), before the final normalisation)."""
@@ -315,10 +261,8 @@ class ProjectionHead:
 
         Notes
         -----
-        Only the rows that the triplets touch are pushed through the head. The loss module returns
-        the gradient with respect to each triplet's raw outputs; rows that appear in several
-        triplets (or roles) get the sum of their gradients, then the chain rule runs through the
-        layers.
+        Only the rows that the triplets touch go through the head; a row in several triplets (or
+        roles) gets the sum of its gradients before the chain rule runs through the layers.
         """
         t = anchor.shape[0]
         rows, inv = np.unique(np.concatenate([anchor, positive, negative]), return_inverse=True)
@@ -370,54 +314,9 @@ class ProjectionHead:
 
 
 # ---------------------------------------------------------------------------------------------
-# optimisers
-# ---------------------------------------------------------------------------------------------
-class _Adam:
-    """Adam [1]_ with bias-corrected first and second moments."""
-
-    def __init__(self, params, names, lr):
-        self.lr, self.t = lr, 0
-        self.m = {k: np.zeros_like(params[k]) for k in names}
-        self.v = {k: np.zeros_like(params[k]) for k in names}
-
-    def step(self, params, grads):
-        self.t += 1
-        c1 = 1.0 - _ADAM_BETA1 ** self.t
-        c2 = 1.0 - _ADAM_BETA2 ** self.t
-        for k, g in grads.items():
-            m, v = self.m[k], self.v[k]
-            m *= _ADAM_BETA1
-            m += (1.0 - _ADAM_BETA1) * g
-            v *= _ADAM_BETA2
-            v += (1.0 - _ADAM_BETA2) * (g * g)
-            params[k] -= self.lr * (m / c1) / (np.sqrt(v / c2) + _ADAM_EPS)
-
-
-class _Momentum:
-    """SGD with classical momentum [2]_: v <- mu v - lr g; p <- p + v."""
-
-    def __init__(self, params, names, lr, momentum):
-        self.lr, self.mu = lr, momentum
-        self.v = {k: np.zeros_like(params[k]) for k in names}
-
-    def step(self, params, grads):
-        for k, g in grads.items():
-            v = self.v[k]
-            v *= self.mu
-            v -= self.lr * g
-            params[k] += v
-
-
-# ---------------------------------------------------------------------------------------------
 # fitting
 # ---------------------------------------------------------------------------------------------
-def _positive_int(value, name, zero=False):
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < (0 if zero else 1):
-        raise TripletkitError(f"{name} must be a whole number >= {0 if zero else 1}, got {value!r}")
-    return int(value)
-
-
-def _mine_epoch(train, head, S, mining_config, quiet):
+def _mine_epoch(train, head, S, mining_config):
     """Mine triplets on the current head outputs of the training rows."""
     from .mining import mine  # imported here: the miner pulls in faiss
 
@@ -429,13 +328,29 @@ def _mine_epoch(train, head, S, mining_config, quiet):
                     return_triplets=True)
 
 
-def _epoch_line(margin, rec, epochs):
-    loss = "n/a" if rec["loss"] is None else f"{rec['loss']:.4f} (after the epoch {rec['loss_after']:.4f})"
-    act = rec["active_fraction"]
-    s = rec["seconds"]
-    return (f"[head] margin {margin:g} epoch {rec['epoch']}/{epochs}: loss {loss}, "
-            f"{rec['triplets']} triplets, active {'n/a' if act is None else f'{act:.3f}'} "
-            f"(mining {s['mining']:.2f} s, gradient {s['gradient']:.2f} s, update {s['update']:.2f} s)")
+def describe_epoch(margin, record, epochs):
+    """One line on an epoch of :func:`fit_head`: its loss, triplets, active share and timings.
+
+    Parameters
+    ----------
+    margin : float
+    record : dict
+        One record of the history that :func:`fit_head` returns.
+    epochs : int
+        Epochs of the fit.
+
+    Returns
+    -------
+    str
+        ``margin 0.2 epoch 3/4: loss 0.0311 (after the epoch 0.0262), 5917 triplets, ...``
+    """
+    loss = "n/a" if record["loss"] is None else f"{record['loss']:.4f} (after the epoch {record['loss_after']:.4f})"
+    active = record["active_fraction"]
+    seconds = record["seconds"]
+    return (f"margin {margin:g} epoch {record['epoch']}/{epochs}: loss {loss}, "
+            f"{record['triplets']} triplets, active {'n/a' if active is None else f'{active:.3f}'} "
+            f"(mining {seconds['mining']:.2f} s, gradient {seconds['gradient']:.2f} s, "
+            f"update {seconds['update']:.2f} s)")
 
 
 @contextlib.contextmanager
@@ -455,6 +370,54 @@ def _diverged_at(margin, epoch, head_config):
             f"the projection head diverged at margin {margin:g} in epoch {epoch} of {head_config.epochs}: {exc.what}; "
             f"lower [head] learning_rate (now {lr:g}, try {lr / 100:g})"
         ) from None
+
+
+def _fit_epoch(head, S, train, optimizer, rng, mining_config, batch):
+    """Mine on the head as it is, then step through the shuffled triplets in minibatches.
+
+    Returns the epoch's record without its number (see :func:`fit_head`).
+    """
+    margin, distance = mining_config.margin, mining_config.distance
+    t0 = time.perf_counter()
+    summary = _mine_epoch(train, head, S, mining_config)
+    t_mine = time.perf_counter() - t0
+    triplets = summary.triplets
+    anchors = np.asarray(triplets["anchor"], dtype=np.int64)
+    positives = np.asarray(triplets["positive"], dtype=np.int64)
+    negatives = np.asarray(triplets["negative"], dtype=np.int64)
+    order = rng.permutation(anchors.shape[0])
+    t_grad = t_upd = 0.0
+    total, steps = 0.0, 0
+    for start in range(0, order.shape[0], batch):
+        sel = order[start:start + batch]
+        t0 = time.perf_counter()
+        loss, grads = head.loss_and_grad(S, anchors[sel], positives[sel], negatives[sel], margin, distance)
+        t1 = time.perf_counter()
+        with np.errstate(over="ignore", invalid="ignore"):
+            optimizer.step(head.params, grads)
+        _finite([head.params[k] for k in head.trainable], "the projection head's weights")
+        t2 = time.perf_counter()
+        t_grad += t1 - t0
+        t_upd += t2 - t1
+        total += loss * sel.shape[0]
+        steps += 1
+    count = anchors.shape[0]
+    loss_after = None
+    if count:
+        # The same triplets, scored once more after the epoch's updates.
+        Z = head._forward(S)[0]
+        loss_after = float(np.mean(triplet_loss(Z[anchors], Z[positives], Z[negatives], margin=margin,
+                                                distance=distance)))
+    info = summary.to_dict()
+    return {
+        "loss": total / count if count else None,
+        "loss_after": loss_after,
+        "triplets": int(count),
+        "steps": steps,
+        "active_fraction": None if info.get("active_fraction") is None else float(info["active_fraction"]),
+        "regimes": {r: int(info.get("regimes", {}).get(r, 0)) for r in REGIMES},
+        "seconds": {"mining": t_mine, "gradient": t_grad, "update": t_upd},
+    }
 
 
 def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet=False, progress=None):
@@ -515,61 +478,19 @@ def fit_head(train_table, margin, head_config=None, mining_config=None, *, quiet
     rng = np.random.default_rng(head_config.seed)
     head = ProjectionHead.initialise(train.embeddings, dim=head_config.dim, hidden=head_config.hidden, seed=rng)
     S = head.standardise(train.embeddings)
-    names = head.trainable
-    if head_config.optimizer == "adam":
-        opt = _Adam(head.params, names, head_config.learning_rate)
-    else:
-        opt = _Momentum(head.params, names, head_config.learning_rate, head_config.momentum)
-    batch = head_config.batch_triplets
+    optimizer = make_optimizer(head_config.optimizer, head.params, head.trainable, head_config.learning_rate,
+                               head_config.momentum)
     history = []
     for epoch in range(1, head_config.epochs + 1):
         with _diverged_at(margin, epoch, head_config):
-            cfg = dataclasses.replace(mining_config, margin=margin, seed=mining_config.seed + epoch)
-            t0 = time.perf_counter()
-            summary = _mine_epoch(train, head, S, cfg, quiet)
-            t_mine = time.perf_counter() - t0
-            trip = summary.triplets
-            a = np.asarray(trip["anchor"], dtype=np.int64)
-            p = np.asarray(trip["positive"], dtype=np.int64)
-            n = np.asarray(trip["negative"], dtype=np.int64)
-            order = rng.permutation(a.shape[0])
-            t_grad = t_upd = 0.0
-            total, steps = 0.0, 0
-            for start in range(0, order.shape[0], batch):
-                sel = order[start:start + batch]
-                t0 = time.perf_counter()
-                loss, grads = head.loss_and_grad(S, a[sel], p[sel], n[sel], margin, cfg.distance)
-                t1 = time.perf_counter()
-                with np.errstate(over="ignore", invalid="ignore"):
-                    opt.step(head.params, grads)
-                _finite([head.params[k] for k in names], "the projection head's weights")
-                t2 = time.perf_counter()
-                t_grad += t1 - t0
-                t_upd += t2 - t1
-                total += loss * sel.shape[0]
-                steps += 1
-            loss_after = None
-            if a.shape[0]:
-                # The same triplets, scored once more after the epoch's updates.
-                Z = head._forward(S)[0]
-                loss_after = float(np.mean(triplet_loss(Z[a], Z[p], Z[n], margin=margin, distance=cfg.distance)))
-            info = summary.to_dict()
-            regimes = {r: int(info.get("regimes", {}).get(r, 0)) for r in REGIMES}
-            rec = {
-                "epoch": epoch,
-                "loss": total / a.shape[0] if a.shape[0] else None,
-                "loss_after": loss_after,
-                "triplets": int(a.shape[0]),
-                "steps": steps,
-                "active_fraction": None if info.get("active_fraction") is None else float(info["active_fraction"]),
-                "regimes": regimes,
-                "seconds": {"mining": t_mine, "gradient": t_grad, "update": t_upd},
-            }
-            history.append(rec)
+            mining = dataclasses.replace(mining_config, margin=margin, seed=mining_config.seed + epoch)
+            record = _fit_epoch(head, S, train, optimizer, rng, mining, head_config.batch_triplets)
+            record = {"epoch": epoch, **record}
+            history.append(record)
             if progress is not None:
-                progress(rec)
-            elif not quiet:
-                print(_epoch_line(margin, rec, head_config.epochs), file=sys.stderr, flush=True)
+                progress(record)
+            else:
+                say("head", describe_epoch(margin, record, head_config.epochs), quiet)
     empty = [rec["epoch"] for rec in history if rec["triplets"] == 0]
     if empty:
         warnings.warn(

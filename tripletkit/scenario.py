@@ -1,35 +1,19 @@
-"""The invented demo scenario: re-identifying grey seals from photos of their coat patterns.
+"""The invented demo scenario, a grey seal re-identification survey: its generator and ``tripletkit demo``.
 
 A coastal wildlife survey photographs grey seals at five haul-out sites over four seasons and
 re-identifies individuals from their coat patterns. Everything here is invented: the sites, the
-seals and the photos are draws from a seeded random model, not data of real animals.
+seals and the photos are draws from one seeded random model (numpy), not data of real animals;
+demo_data/README.md describes the scenario and its deliberate defects. Each individual has a
+latent identity (one in seven a look-alike relative of an earlier one); each photo adds nuisance
+(pose, light, site, season) along directions shared by all individuals, so a linear projection
+head can learn to suppress it. A frozen backbone mixes both into raw features, and a partially
+trained model removes part of the nuisance and projects to unit embeddings. :func:`demo` runs the
+package's loop (check, mine, loss, score, sweep) on the tables.
 
-The generative model (all numpy, one seed):
-
-- every individual has a latent identity vector (16 values); about one in seven is a look-alike
-  relative of an earlier individual (correlated identity), which makes some impostor pairs close;
-- every photo adds nuisance factors that are SHARED by all individuals: pose (3), light (2), a
-  per-site offset and a per-season offset, all living in one 12-dimensional nuisance space whose
-  spread is larger than the spacing between many pairs of individuals, plus a small
-  individual-specific variation (coat wet or dry, moult) and isotropic noise whose scale depends
-  on the site (some sites are photographed from further away);
-- the frozen backbone: raw per-photo features (64 values) are a fixed random linear mix of the
-  identity and nuisance parts, bent by a mild element-wise curvature. Because the nuisance lives
-  in a subspace shared by all individuals, a linear projection head can learn to suppress it;
-- the partially trained model: embeddings (32 values) are a fixed random projection of the raw
-  features after removing 60 % of their component in the nuisance subspace, L2-normalised. The
-  nuisance that is left is what makes hard and semi-hard triplets.
-
-Deliberate defects, as in a real catalogue: a few individuals of the training dump have a
-single photo (singletons, which cannot be anchors), and two seals were each filed a second time
-under a new catalogue number (two photos each, near-duplicates of photos of the original seal,
-cosine > 0.98), which a label-noise report should find. The pairs are recorded in the Parquet
-key-value metadata under ``tripletkit.demo``.
-
-Reproducibility: all values are computed in float64 and rounded to a binary grid that float32
-holds exactly (features to 2**-12, embeddings to 2**-20) before they are stored, so the stored
-bytes do not depend on the last bits of a BLAS kernel. The Parquet writer options are fixed and no
-timestamp is written, so the same seed, numpy and pyarrow versions give the same bytes.
+All values are computed in float64 and rounded to a binary grid that float32 holds exactly
+(features to 2**-12, embeddings to 2**-20) before they are stored, and the Parquet writer options
+are fixed with no timestamp: the same seed, numpy and pyarrow versions give the same bytes,
+whatever the last bits of a BLAS kernel.
 """
 
 from __future__ import annotations
@@ -45,20 +29,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ._errors import TripletkitError
-from ._io import PARQUET_WRITE, atomic_path, check_not_input, check_output, jsonable
+from ._io import PARQUET_WRITE, atomic_path, check_not_input, check_output, jsonable, say
 
-__all__ = [
-    "DEFAULT_SEED",
-    "DEMO_FILES",
-    "SITES",
-    "SEASONS",
-    "FEATURE_DIM",
-    "EMBEDDING_DIM",
-    "generate",
-    "demo_paths",
-    "demo",
-    "main",
-]
+__all__ = ["DEFAULT_SEED", "DEMO_FILES", "SITES", "SEASONS", "FEATURE_DIM", "EMBEDDING_DIM", "generate", "demo_paths",
+           "demo", "main"]
 
 DEFAULT_SEED = 20240917
 
@@ -73,13 +47,8 @@ DEMO_FILES = {
 #: Invented haul-out sites (slug used in the table, relative difficulty). The difficulty scales
 #: the pose/light spread and the photo noise at that site (a rocky reef photographed from a boat
 #: is harder than a sandy beach), so that per-group error rates differ, as in a real survey.
-SITES = (
-    ("skarth-point", 1.0),
-    ("vellin-sands", 0.8),
-    ("orrisey-reef", 1.45),
-    ("brennock-bay", 1.0),
-    ("caddow-skerry", 1.2),
-)
+SITES = (("skarth-point", 1.0), ("vellin-sands", 0.8), ("orrisey-reef", 1.45), ("brennock-bay", 1.0),
+         ("caddow-skerry", 1.2))
 SEASONS = ("spring", "summer", "autumn", "winter")
 
 FEATURE_DIM = 64
@@ -89,30 +58,18 @@ EMBEDDING_DIM = 32
 # fit-head sweep of a few margins) stays well under two minutes on two cores, and so that the raw
 # features have a held-out EER of about 20 %, the dumped embeddings about 10 %, and a linear map
 # that removes the shared nuisance (LDA, as a reference) about 3 %.
-_N_TRAIN = 300
-_N_HELDOUT = 100
-_N_TRAIN_SINGLETONS = 5
-_N_DUPLICATE_SEALS = 2
-_PHOTOS_MIN = 3
-_PHOTOS_EXTRA_MEAN = 10
-_ID_DIM = 16
-_NUISANCE_DIM = 12
-_POSE_DIM = 3
-_LIGHT_DIM = 2
-_OWN_DIM = 3
-_KIN_FRACTION = 0.15
-_KIN_CORRELATION = 0.8
-_HOME_SITE_FRACTION = 0.75
-_SITE_SPREAD = 1.0
-_SEASON_SPREAD = 0.7
-_POSE_SCALE = 1.0
-_LIGHT_SCALE = 1.0
-_OTHER_NUISANCE_SCALE = 0.8
-_OWN_SCALE = 1.0
-_NOISE_SCALE = 0.35
-_CURVATURE = 0.08
-_NUISANCE_KEPT = 0.4
-_DUPLICATE_JITTER = 0.1
+_N_TRAIN, _N_HELDOUT = 300, 100  # individuals
+_N_TRAIN_SINGLETONS, _N_DUPLICATE_SEALS = 5, 2  # the deliberate defects of the training dump
+_PHOTOS_MIN, _PHOTOS_EXTRA_MEAN = 3, 10  # photos per individual: 3 + Poisson(10)
+_ID_DIM, _NUISANCE_DIM, _POSE_DIM, _LIGHT_DIM, _OWN_DIM = 16, 12, 3, 2, 3  # latent dimensions
+_KIN_FRACTION, _KIN_CORRELATION = 0.15, 0.8  # look-alike relatives
+_HOME_SITE_FRACTION = 0.75  # photos taken at the individual's home site
+_SITE_SPREAD, _SEASON_SPREAD = 1.0, 0.7  # spread of the site and season offsets
+_POSE_SCALE, _LIGHT_SCALE, _OTHER_NUISANCE_SCALE = 1.0, 1.0, 0.8  # per-photo nuisance
+_OWN_SCALE, _NOISE_SCALE = 1.0, 0.35  # individual-specific variation (wet/dry, moult), photo noise
+_CURVATURE = 0.08  # the backbone's element-wise bend
+_NUISANCE_KEPT = 0.4  # share of the nuisance component the partially trained model keeps
+_DUPLICATE_JITTER = 0.1  # feature jitter of a re-uploaded photo
 
 _FEATURE_GRID = 2.0**12
 _EMBEDDING_GRID = 2.0**20
@@ -124,24 +81,14 @@ _METADATA_KEY = b"tripletkit.demo"
 # Fixed writer options: the same table always gives the same bytes (no timestamps are written
 # by pyarrow's Parquet writer; the footer records the writer's version string). Page checksums
 # and compression come from the options of every file the package writes.
-_WRITE_OPTIONS = dict(
-    PARQUET_WRITE,
-    row_group_size=1 << 16,
-    version="2.6",
-    data_page_version="1.0",
-    compression_level=3,
-    use_dictionary=["label", "group", "site", "season"],
-    write_statistics=True,
-    store_schema=True,
-    write_page_index=False,
-)
+_WRITE_OPTIONS = dict(PARQUET_WRITE, row_group_size=1 << 16, version="2.6", data_page_version="1.0",
+                      compression_level=3, use_dictionary=["label", "group", "site", "season"], write_statistics=True,
+                      store_schema=True, write_page_index=False)
 
 
 # ---------------------------------------------------------------------------------------------
 # the generative model
 # ---------------------------------------------------------------------------------------------
-
-
 def _draw_world(rng):
     """The parts shared by every photo: mixing matrices, site and season offsets."""
     n_sites = len(SITES)
@@ -187,31 +134,15 @@ def _draw_photos(rng, world, seals, counts):
     at_home = rng.random(m) < _HOME_SITE_FRACTION
     site = np.where(at_home, seals["home_site"][who], rng.integers(0, len(SITES), size=m))
     season = rng.integers(0, len(SEASONS), size=m)
-    scales = np.concatenate(
-        [
-            np.full(_POSE_DIM, _POSE_SCALE),
-            np.full(_LIGHT_DIM, _LIGHT_SCALE),
-            np.full(_NUISANCE_DIM - _POSE_DIM - _LIGHT_DIM, _OTHER_NUISANCE_SCALE),
-        ]
-    )
+    scales = np.concatenate([np.full(_POSE_DIM, _POSE_SCALE), np.full(_LIGHT_DIM, _LIGHT_SCALE),
+                             np.full(_NUISANCE_DIM - _POSE_DIM - _LIGHT_DIM, _OTHER_NUISANCE_SCALE)])
     difficulty = world["site_difficulty"][site][:, None]
-    nuisance = (
-        rng.normal(size=(m, _NUISANCE_DIM)) * scales * difficulty
-        + world["site_offset"][site]
-        + world["season_offset"][season]
-    )
-    own = np.einsum(
-        "mkj,mj->mk", seals["own_directions"][who], rng.normal(size=(m, _OWN_DIM)) * _OWN_SCALE
-    )
+    nuisance = (rng.normal(size=(m, _NUISANCE_DIM)) * scales * difficulty
+                + world["site_offset"][site] + world["season_offset"][season])
+    own = np.einsum("mkj,mj->mk", seals["own_directions"][who], rng.normal(size=(m, _OWN_DIM)) * _OWN_SCALE)
     noise = rng.normal(size=(m, FEATURE_DIM)) * (_NOISE_SCALE * difficulty)
-    return {
-        "who": who,
-        "site": site,
-        "season": season,
-        "identity": seals["identity"][who] + own,
-        "nuisance": nuisance,
-        "noise": noise,
-    }
+    return {"who": who, "site": site, "season": season, "identity": seals["identity"][who] + own,
+            "nuisance": nuisance, "noise": noise}
 
 
 def _backbone(world, identity, nuisance, noise):
@@ -264,8 +195,6 @@ def _add_duplicates(rng, photos, features, n_train, n_dup):
 # ---------------------------------------------------------------------------------------------
 # tables
 # ---------------------------------------------------------------------------------------------
-
-
 def _build_tables(seed):
     """All four demo tables as pyarrow Tables (keys of :data:`DEMO_FILES`)."""
     streams = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(4)]
@@ -293,14 +222,10 @@ def _build_tables(seed):
     train_ids = np.array([f"photo-{k:06d}" for k in photo_numbers[: train_x.shape[0]]])
     held_ids = np.array([f"photo-{k:06d}" for k in photo_numbers[train_x.shape[0]:]])
 
-    duplicates = sorted(
-        sorted((str(train_ids[a]), str(train_ids[b]))) for a, b in dup_rows
-    )
+    duplicates = sorted(sorted((str(train_ids[a]), str(train_ids[b]))) for a, b in dup_rows)
     tables = {}
-    for split, ids, labels, photos, x in (
-        ("train", train_ids, train_labels, train, train_x),
-        ("heldout", held_ids, held_labels, held, held_x),
-    ):
+    for split, ids, labels, photos, x in (("train", train_ids, train_labels, train, train_x),
+                                          ("heldout", held_ids, held_labels, held, held_x)):
         order = np.argsort(ids, kind="stable")
         e = _partial_model(world, x)
         common = {
@@ -326,16 +251,14 @@ def _to_arrow(columns, values, info):
     n, d = values.shape
     flat = pa.array(np.ascontiguousarray(values, dtype=np.float32).reshape(-1), type=pa.float32())
     site = pa.array(columns["site"], type=pa.string())
-    table = pa.table(
-        {
-            "id": pa.array(columns["id"], type=pa.string()),
-            "label": pa.array(columns["label"], type=pa.string()),
-            "embedding": pa.FixedSizeListArray.from_arrays(flat, d),
-            "group": site,
-            "site": site,
-            "season": pa.array(columns["season"], type=pa.string()),
-        }
-    )
+    table = pa.table({
+        "id": pa.array(columns["id"], type=pa.string()),
+        "label": pa.array(columns["label"], type=pa.string()),
+        "embedding": pa.FixedSizeListArray.from_arrays(flat, d),
+        "group": site,
+        "site": site,
+        "season": pa.array(columns["season"], type=pa.string()),
+    })
     meta = {_METADATA_KEY: json.dumps(info, sort_keys=True, separators=(",", ":")).encode()}
     return table.replace_schema_metadata(meta)
 
@@ -350,8 +273,6 @@ def _write_table(table, path, force):
 # ---------------------------------------------------------------------------------------------
 # public entry points
 # ---------------------------------------------------------------------------------------------
-
-
 def generate(out_dir, seed=DEFAULT_SEED, force=False):
     """Write the four demo tables into ``out_dir``.
 
@@ -436,6 +357,7 @@ def demo_paths(cache_dir=None):
         return cache
     return generate(cache_dir, seed=DEFAULT_SEED, force=True)
 
+
 #: The margin sweep the demo runs (fit-head mode on the raw features); paths are filled in.
 DEMO_SWEEP_TOML = """\
 # Written by `tripletkit demo`: a fit-head margin sweep on the demo features.
@@ -456,11 +378,6 @@ epochs = 4
 [evaluation]
 bootstrap = 100
 """
-
-
-def _stage(progress, text):
-    if progress:
-        print(f"[demo] {text}", file=sys.stderr, flush=True)
 
 
 def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
@@ -489,32 +406,30 @@ def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
     """
     from .config import EvaluationConfig, MiningConfig
     from .evaluate import score
+    from .losses import loss
     from .mining import mine
     from .tables.embeddings import check
-    from .losses import loss
 
     out = Path(out)
-    progress = not quiet
     summary = {}
     # --force replaces the folder: never one that holds the demo tables or the package itself
     check_not_input(out, [_bundled_dir(), Path(__file__).resolve().parent])
     with atomic_path(out, force=force, directory=True) as tmp:
         data = demo_paths(cache_dir=tmp / "data")
-        _stage(progress, "checking the training dump and the held-out set")
+        say("demo", "checking the training dump and the held-out set", quiet)
         summary["check"] = {"train": check(data["train_embeddings"]), "heldout": check(data["heldout_embeddings"])}
         (tmp / "check.json").write_text(json.dumps(summary["check"], indent=2))
 
-        _stage(progress, "mining semi-hard and hard triplets from the training dump")
+        say("demo", "mining semi-hard and hard triplets from the training dump", quiet)
         mining_cfg = MiningConfig(regimes=("semi-hard", "hard"), seed=0)
         mined = mine(data["train_embeddings"], out=tmp / "triplets.parquet", config=mining_cfg, quiet=quiet)
         summary["mine"] = {k: v for k, v in jsonable(mined).items() if k not in ("out", "duplicates_out")}
 
-        _stage(progress, "scoring the mined triplets (loss)")
-        summary["loss"] = loss(tmp / "triplets.parquet", data["train_embeddings"],
-                                              margin=mining_cfg.margin)
+        say("demo", "scoring the mined triplets (loss)", quiet)
+        summary["loss"] = loss(tmp / "triplets.parquet", data["train_embeddings"], margin=mining_cfg.margin)
         (tmp / "loss.json").write_text(json.dumps(jsonable(summary["loss"]), indent=2))
 
-        _stage(progress, "scoring the held-out seals (verification, retrieval, clustering)")
+        say("demo", "scoring the held-out seals (verification, retrieval, clustering)", quiet)
         report = score(data["heldout_embeddings"], out=tmp / "score", config=EvaluationConfig(bootstrap=100),
                        quiet=quiet)
         ver = report["verification"]
@@ -523,7 +438,7 @@ def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
                             "recall_at_1": report["retrieval"]["recall_at_k"].get("1")}
 
         if sweep:
-            _stage(progress, "sweeping the margin with a projection head on the raw features")
+            say("demo", "sweeping the margin with a projection head on the raw features", quiet)
             cfg_path = tmp / "sweep.toml"
             cfg_path.write_text(DEMO_SWEEP_TOML.format(train=Path(data["train_features"]).resolve(),
                                                        heldout=Path(data["heldout_features"]).resolve()))
@@ -545,23 +460,17 @@ def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
         "score": str(out / "score" / "report.md"),
         **({"sweep": str(out / "sweep" / "sweep.md")} if sweep else {}),
     }
-    _stage(progress, f"done; reports are in {out}/ (score/report.md" + (", sweep/sweep.md)" if sweep else ")"))
+    say("demo", f"done; reports are in {out}/ (score/report.md" + (", sweep/sweep.md)" if sweep else ")"), quiet)
     return summary
-
 
 
 def main(argv=None):
     """``python -m tripletkit.scenario --regenerate DIR [--seed N] [--force]``; returns an exit code."""
-    parser = argparse.ArgumentParser(
-        prog="python -m tripletkit.scenario",
-        description="Regenerate the invented seal re-identification demo tables byte for byte.",
-    )
-    parser.add_argument(
-        "--regenerate", metavar="DIR", required=True, help="folder to write the four tables into"
-    )
-    parser.add_argument(
-        "--seed", type=int, default=DEFAULT_SEED, help=f"scenario seed (default {DEFAULT_SEED})"
-    )
+    parser = argparse.ArgumentParser(prog="python -m tripletkit.scenario",
+                                     description="Regenerate the invented seal re-identification demo tables "
+                                                 "byte for byte.")
+    parser.add_argument("--regenerate", metavar="DIR", required=True, help="folder to write the four tables into")
+    parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help=f"scenario seed (default {DEFAULT_SEED})")
     parser.add_argument("--force", action="store_true", help="replace existing files")
     args = parser.parse_args(argv)
     try:

@@ -26,7 +26,6 @@ from .._validate import (
 from .allpairs import BlockPlan, Blocks, block_size, workers_for
 from .bins import NBINS, SCORE_SCALE, keys_of, score_counts
 from .bootstrap import Resampling, binned_bootstrap, interval_table, scores_bootstrap, threshold_grid, window_factor
-from .rates import ScoreCounts, equal_error_rate  # noqa: F401  (tripletkit.sweeps imports them from here)
 from .rates import _count_exact, auc, fnmr_at_fmr, resolvable
 from .refine import TopImpostors, choose_bins, operating_bins
 from .section import (

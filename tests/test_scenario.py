@@ -301,3 +301,18 @@ def test_command_line(tmp_path, capsys):
     err = capsys.readouterr().err
     assert err.startswith("error: ") and err.count("\n") == 1
     assert scenario.main(["--regenerate", str(tmp_path), "--force"]) == 0
+
+
+def test_demo_without_the_sweep_writes_each_stage(tmp_path, capsys):
+    out = tmp_path / "demo"
+    summary = scenario.demo(out, sweep=False)
+    names = {p.name for p in out.iterdir()}
+    assert {"check.json", "triplets.parquet", "loss.json", "score", "demo.json"} <= names
+    assert "sweep" not in names and "sweep" not in summary
+    assert (out / "score" / "report.md").is_file()
+    assert json.loads((out / "demo.json").read_text())["score"]["eer"] == summary["score"]["eer"]
+    demo_lines = [line for line in capsys.readouterr().err.splitlines() if line.startswith("[demo] ")]
+    assert demo_lines[0] == "[demo] checking the training dump and the held-out set"
+    assert demo_lines[-1].startswith(f"[demo] done; reports are in {out}/")
+    scenario.demo(tmp_path / "quiet", quiet=True, sweep=False)
+    assert capsys.readouterr().err == ""
