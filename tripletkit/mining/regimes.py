@@ -51,9 +51,14 @@ def regime_codes(d_ap, d_an, margin=0.2):
 
     Notes
     -----
-    hard: d_an < d_ap; semi-hard: d_ap <= d_an < d_ap + margin; easy: d_an >= d_ap + margin. The
-    comparison is made in float64 with ``d_ap + margin`` computed once, the same expression the
-    hinge uses, so "easy" is exactly "hinge loss 0". With margin 0 no triplet is semi-hard.
+    hard: d_an < d_ap; semi-hard: d_ap <= d_an < d_ap + margin [1]_; easy: d_an >= d_ap + margin.
+    The comparison is made in float64 with ``d_ap + margin`` computed once, the same expression
+    the hinge uses, so "easy" is exactly "hinge loss 0". With margin 0 no triplet is semi-hard.
+
+    References
+    ----------
+    .. [1] F. Schroff, D. Kalenichenko, J. Philbin, "FaceNet: A Unified Embedding for Face
+       Recognition and Clustering", CVPR 2015, Sec. 3.2 (semi-hard negatives).
     """
     margin = margin_number(margin)
     d_ap = _as_distances(d_ap, "d_ap")
