@@ -18,9 +18,8 @@ Three parts, each path in its own subprocess so that its peak memory (``ru_maxrs
 separated table, the first epoch of ``tripletkit.head.fit_head``: the clustered features of
 bench/bench_head.py (``_synthetic``) through a freshly initialised projection head (a random
 projection to DIM, 25 rows per identity), mined with the defaults. The miner's dense path (chosen
-automatically on such a table) runs against the search path it replaces (kept reachable by the
-private knob ``tripletkit.mining._DENSE_SHARE = inf``), alternated ``--repeat`` times; the two
-outputs must be byte-identical (their SHA-256 is compared)::
+automatically on such a table) runs against the search path it replaces (``mine(..., dense=False)``),
+alternated ``--repeat`` times; the two outputs must be byte-identical (their SHA-256 is compared)::
 
     python bench/bench_mining.py --case first-epoch --rows 10000 --dim 16 --repeat 2
 
@@ -141,16 +140,15 @@ def child(args):
             D[s:s + args.block], I[s:s + args.block] = index.search(table.embeddings[s:s + args.block], args.k)
         res["seconds"] = time.perf_counter() - t0
     else:
-        from tripletkit import mining
         from tripletkit.mining import mine
 
-        if args.child == "mine-search":
-            mining._DENSE_SHARE = float("inf")  # the search path (top-k + widening) for every table
+        # mine-search: the search path (top-k + widening) for every table
+        dense = False if args.child == "mine-search" else None
         with tempfile.TemporaryDirectory(dir=args.tmp) as tmp:
             t0 = time.perf_counter()
             s = mine(table, os.path.join(tmp, "triplets.parquet"), index=args.index, quiet=True,
                      neighbours=args.k, exact_below=args.rows + 1, ivf_nprobe=args.ivf_nprobe,
-                     hnsw_ef_search=args.hnsw_ef_search)
+                     hnsw_ef_search=args.hnsw_ef_search, dense=dense)
             res["seconds"] = time.perf_counter() - t0
             res["output_mb"] = os.path.getsize(os.path.join(tmp, "triplets.parquet")) / 2 ** 20
             with open(os.path.join(tmp, "triplets.parquet"), "rb") as f:

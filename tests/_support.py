@@ -3,14 +3,22 @@
 - :func:`four_squares` and :func:`lattice_table`: unit rows of integers / scale, whose products
   are exact in float32 and float64 alike (any summation order gives the same bits);
 - :func:`clustered_rows`: seeded unit rows scattered around one random centre per identity;
+- :func:`grouped_rows` and :func:`traced_peak`: a table of equal-sized identities, and the peak of
+  the numpy allocations of a call (what the memory estimates are checked against);
 - :func:`pair_scores`: every pair's float64 score with its genuine flag, the brute force of
   verification;
-- :func:`distances` and :func:`regime_name`: the brute force of the regime boundaries;
+- :func:`distances`, :func:`distance_of_cosine` and :func:`regime_name`: the brute force of the
+  regime boundaries;
+- :func:`clustered_table`: identities as clusters whose families overlap (every regime occurs);
+- :func:`regime_candidates`, :func:`all_pairs`, :func:`chosen_negatives` and
+  :func:`check_every_triplet`: the brute force of mining, sharing nothing with the miner;
 - :func:`identity_clusters`: rows in blocks of one identity around its centre (sweeps);
 - :func:`check_image`: a PNG file that holds a drawing (reports).
 """
 
 import math
+import tracemalloc
+import warnings
 
 import numpy as np
 
@@ -64,6 +72,26 @@ def clustered_rows(rng, n, d, k, noise=1.0, labels=None):
     return (x / np.linalg.norm(x, axis=1, keepdims=True)).astype(np.float32), labels
 
 
+def grouped_rows(rng, n, d, per=20, noise=0.3):
+    """(ids, labels, raw rows (n, d)): ``n // per`` identities of ``per`` rows around normal centres."""
+    k = n // per
+    labels = np.repeat(np.arange(k), per)
+    X = rng.normal(size=(k, d))[labels] + noise * rng.normal(size=(n, d))
+    return np.arange(n), labels, X
+
+
+def traced_peak(fn):
+    """Peak bytes that ``tracemalloc`` traces while ``fn()`` runs (warnings silenced)."""
+    tracemalloc.start()
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fn()
+        return tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+
+
 def pair_scores(x, labels):
     """(scores, genuine, i, j) of every pair i < j: float64 products of the rows as given."""
     s = x.astype(np.float64) @ x.astype(np.float64).T
@@ -71,12 +99,17 @@ def pair_scores(x, labels):
     return s[i, j], labels[i] == labels[j], i, j
 
 
+def distance_of_cosine(cos, distance):
+    """Distances of unit vectors from their cosines: squared ``2 - 2 cos`` (clipped at 0) or its root."""
+    sq = np.maximum(2.0 - 2.0 * np.asarray(cos, dtype=np.float64), 0.0)
+    return sq if distance == "squared" else np.sqrt(sq)
+
+
 def distances(rows, distance):
-    """(distance matrix, cosine matrix) of float64 unit rows: squared ``2 - 2 cos`` or its root."""
+    """(distance matrix, cosine matrix) of unit rows, from one float64 Gram matrix."""
     u = np.asarray(rows, dtype=np.float64)
     cos = u @ u.T
-    sq = np.maximum(2.0 - 2.0 * cos, 0.0)
-    return (sq if distance == "squared" else np.sqrt(sq)), cos
+    return distance_of_cosine(cos, distance), cos
 
 
 def regime_name(d_ap, d_an, margin):
@@ -126,3 +159,89 @@ def check_image(path, min_width=700, min_height=300):
     # something was drawn: many distinct colours, not a blank canvas
     flat = (pixels[..., :3] * 255).astype(np.uint8).reshape(-1, 3)
     assert len(np.unique(flat, axis=0)) > 20
+
+
+# mining: a table with every regime, and the brute force every mined triplet is checked against
+# ---------------------------------------------------------------------------------------------
+def clustered_table(seed, identities=30, per=10, dim=16, spread=0.9, family=3, family_spread=1.0, singletons=0):
+    """An EmbeddingTable of identities as clusters; identities of one family share a nearby
+    centre (so they overlap), and ``singletons`` rows of their own identity come last."""
+    from tripletkit.tables.embeddings import EmbeddingTable
+
+    rng = np.random.default_rng(seed)
+    fam = rng.standard_normal((max(1, identities // family), dim))
+    fam /= np.linalg.norm(fam, axis=1, keepdims=True)
+    centres = fam[np.arange(identities) % fam.shape[0]] + family_spread * rng.standard_normal((identities, dim)) / np.sqrt(dim)
+    sizes = np.full(identities, per)
+    labels = np.repeat(np.arange(identities), sizes)
+    X = centres[labels] + spread * rng.standard_normal((labels.size, dim)) / np.sqrt(dim)
+    if singletons:
+        labels = np.concatenate([labels, identities + np.arange(singletons)])
+        X = np.vstack([X, rng.standard_normal((singletons, dim))])
+    return EmbeddingTable.from_arrays(np.arange(labels.size) * 3 + 7, labels, X)
+
+
+def regime_candidates(labels, D, a, p, regime, margin, C=None, exclude_above=None):
+    """Rows of another identity in ``regime`` for the pair (a, p), sorted by (distance, row).
+
+    ``D`` and ``C`` are the distance and cosine matrices of :func:`distances`; with
+    ``exclude_above``, rows whose cosine with ``a`` exceeds it (suspect duplicates) are left out.
+    """
+    other = np.flatnonzero(labels != labels[a])
+    d = D[a, other]
+    if regime == "hard":
+        ok = d < D[a, p]
+    elif regime == "semi-hard":
+        ok = (d >= D[a, p]) & (d < D[a, p] + margin)
+    else:
+        ok = d >= D[a, p] + margin
+    if exclude_above is not None:
+        ok &= ~(C[a, other] > exclude_above)
+    rows = other[ok]
+    return rows[np.lexsort((rows, D[a, rows]))]
+
+
+def all_pairs(labels):
+    """Every ordered same-label pair of rows (what the miner draws when positives_per_anchor is large)."""
+    out = []
+    for lab in np.unique(labels):
+        rows = np.flatnonzero(labels == lab)
+        for a in rows:
+            for p in rows:
+                if a != p:
+                    out.append((a, p))
+    return out
+
+
+def chosen_negatives(summary):
+    """{(anchor row, positive row, regime name): [negative rows in output order]} of a mining summary."""
+    from tripletkit.mining.regimes import REGIMES
+
+    tr = summary.triplets
+    res = {}
+    for a, p, n, r in zip(tr["anchor"], tr["positive"], tr["negative"], tr["regime"]):
+        res.setdefault((int(a), int(p), REGIMES[r]), []).append(int(n))
+    return res
+
+
+def check_every_triplet(table, summary, margin, distance):
+    """Labels, stored distances, violation and regime of every triplet of a mining summary, by
+    brute force; returns the distance matrix."""
+    from tripletkit.mining.regimes import REGIMES
+
+    D, _ = distances(table.embeddings, distance)
+    tr = summary.triplets
+    a, p, n = tr["anchor"], tr["positive"], tr["negative"]
+    assert np.array_equal(table.ids[a], tr["anchor_id"])
+    assert np.all(table.labels[a] == table.labels[p])
+    assert np.all(table.labels[a] != table.labels[n])
+    assert np.all(a != p)
+    np.testing.assert_allclose(tr["d_ap"], D[a, p], rtol=0, atol=2e-6)
+    np.testing.assert_allclose(tr["d_an"], D[a, n], rtol=0, atol=2e-6)
+    np.testing.assert_allclose(tr["violation"], D[a, p] - D[a, n] + margin, rtol=0, atol=4e-6)
+    want = [regime_name(x, y, margin) for x, y in zip(D[a, p], D[a, n])]
+    assert [REGIMES[c] for c in tr["regime"]] == want
+    # no negative twice for one (pair, regime)
+    key = np.stack([a, p, n, tr["regime"]], axis=1)
+    assert np.unique(key, axis=0).shape[0] == key.shape[0]
+    return D

@@ -1,20 +1,16 @@
 """The memory guard: available memory (faked), the one-line refusal, and the estimators.
 
-The estimators are checked twice: against hand-computed sums of their documented terms, and
-against the allocations that ``tracemalloc`` traces during real runs of ``mine`` and ``score``
-(numpy's arrays; faiss's own C++ allocations are invisible to it).
+The scoring estimator is checked twice: against hand-computed sums of its documented terms, and
+against the allocations that ``tracemalloc`` traces during real runs of ``score`` (numpy's arrays).
+The mining estimate is tested with the mining plan (tests/mining/test_plan.py).
 """
 
-import tracemalloc
-import warnings
-
-import numpy as np
 import pytest
+from _support import grouped_rows, traced_peak
 
 from tripletkit import _memory
 from tripletkit._errors import TripletkitError
-from tripletkit._memory import (ENV_LIMIT, USABLE_SHARE, available_bytes, estimate_and_guard, format_bytes,
-                                mining_bytes, scoring_bytes)
+from tripletkit._memory import ENV_LIMIT, USABLE_SHARE, available_bytes, estimate_and_guard, format_bytes, scoring_bytes
 
 MB = 2**20
 GB = 2**30
@@ -131,43 +127,6 @@ def test_format_bytes():
 
 
 # -- estimators: hand-computed sums of the documented terms -----------------------------------
-def test_mining_bytes_hand_computed():
-    # n=1000, d=10, 100 anchors per block, k=10, exact, memory_mb=16, 4 positives per anchor:
-    # table 40,000 + flat index 40,000 + miner state 48,000 + block 100*10*64 = 64,000
-    # + widened searches (or one dense block) 16 MiB / 4 = 4,194,304 + the dense path's transposed
-    # copy 40,000 + cosines 2 * min(16384, 4000) * 10 * 12 = 960,000
-    assert mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16) == 40_000 + 40_000 + 48_000 + 64_000 \
-        + 4_194_304 + 40_000 + 960_000
-    # 1,000 returned triplets add 80 bytes each
-    assert mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16, triplets=1000) == \
-        mining_bytes(1000, 10, 100, 10, "exact", memory_mb=16) + 80_000
-    # n=100,000, d=8, 10 anchors per block: one dense row (216 bytes a cell with distance-weighted
-    # selection) against every row, 21,600,000, is more than the quarter of 16 MiB and counts instead:
-    # table 3,200,000 + index 3,200,000 + miner 4,800,000 + block 10*10*64 = 6,400 + dense row
-    # 21,600,000 + transposed copy 3,200,000 + cosines 2 * 87,381 * 8 * 12 = 16,777,152
-    assert mining_bytes(100_000, 8, 10, 10, "exact", memory_mb=16) == 3_200_000 + 3_200_000 + 4_800_000 \
-        + 6_400 + 21_600_000 + 3_200_000 + 16_777_152
-
-
-def test_mining_bytes_index_kinds_and_auto():
-    n, d = 300_000, 128
-    exact = mining_bytes(n, d, 0, 100, "exact")
-    # hnsw adds 2*M int32 links per node (+1/M for the upper levels): 300,000 * 256 * (33/32), and
-    # does without the exact index's dense-path copy of the vectors (300,000 * 128 * 4)
-    assert mining_bytes(n, d, 0, 100, "hnsw", hnsw_m=32) - exact == int(n * 2 * 32 * 4 * (1 + 1 / 32)) - n * d * 4
-    assert mining_bytes(n, d, 0, 100, "ivf") > exact
-    # auto is exact below exact_below rows, ivf from there on
-    assert mining_bytes(n, d, 0, 100, "auto", exact_below=n + 1) == exact
-    assert mining_bytes(n, d, 0, 100, "auto", exact_below=n) == mining_bytes(n, d, 0, 100, "ivf")
-
-
-def test_mining_bytes_grows_with_the_table():
-    small = mining_bytes(100_000, 128, 0, 100, "exact")
-    big = mining_bytes(1_000_000, 128, 0, 100, "exact")
-    # the two float32 copies of the matrix (table and index) grow by 2 * 900,000 * 128 * 4
-    assert big - small >= 2 * 900_000 * 128 * 4
-
-
 def test_scoring_bytes_hand_computed():
     # n=1000, d=8, 100 rows per block, memory_mb=16, no genuine pairs, 10 identities, 2 workers.
     # verification: float64 copy on the exact-cosine grid 64,000 + per worker (blocks
@@ -200,53 +159,25 @@ def test_scoring_bytes_health_term_grows_with_min_n_d_squared():
                            available=wide // 2)
 
 
-@pytest.mark.parametrize("fn", [mining_bytes, scoring_bytes])
-def test_estimators_reject_bad_sizes(fn):
-    args = (10, 4, 0, 5, "exact") if fn is mining_bytes else (10, 4, 0)
-    bad = list(args)
-    bad[0] = -1
+def test_scoring_bytes_rejects_bad_sizes():
     with pytest.raises(ValueError):
-        fn(*bad)
-    bad[0] = 2.5
+        scoring_bytes(-1, 4, 0)
     with pytest.raises(ValueError):
-        fn(*bad)
+        scoring_bytes(2.5, 4, 0)
 
 
 # -- estimators against what real runs allocate -----------------------------------------------
-def _clusters(rng, n, d, per=20, noise=0.3):
-    k = n // per
-    labels = np.repeat(np.arange(k), per)
-    X = rng.normal(size=(k, d))[labels] + noise * rng.normal(size=(n, d))
-    return np.arange(n), labels, X
-
-
-def _traced_peak(fn):
-    tracemalloc.start()
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            fn()
-        return tracemalloc.get_traced_memory()[1]
-    finally:
-        tracemalloc.stop()
-
-
 # Tolerance: the estimate is a planning figure, not an accounting; within a factor of 2.5 of
 # the traced numpy allocations either way (our choice; measured ratios were 0.7 to 2.0).
 @pytest.mark.parametrize("n, d", [(4000, 64), (2000, 256)])
-def test_estimates_track_traced_allocations(rng, n, d):
-    from tripletkit.config import EvaluationConfig, MiningConfig
+def test_scoring_estimate_tracks_traced_allocations(rng, n, d):
+    from tripletkit.config import EvaluationConfig
     from tripletkit.evaluate import score
-    from tripletkit.mining import mine
     from tripletkit.tables.embeddings import EmbeddingTable
 
-    ids, labels, X = _clusters(rng, n, d)
+    ids, labels, X = grouped_rows(rng, n, d)
     table = EmbeddingTable.from_arrays(ids, labels, X)
-    mined = _traced_peak(lambda: mine(table, config=MiningConfig(memory_mb=16), quiet=True))
-    est = mining_bytes(n, d, 0, 100, "exact", memory_mb=16)
-    assert mined / 2.5 <= est <= 2.5 * mined, (format_bytes(mined), format_bytes(est))
-
     cfg = EvaluationConfig(memory_mb=16, bootstrap=0, clustering=False, plots=False)
-    scored = _traced_peak(lambda: score(table, config=cfg, quiet=True))
+    scored = traced_peak(lambda: score(table, config=cfg, quiet=True))
     est = scoring_bytes(n, d, 0, memory_mb=16, genuine_pairs=(n // 20) * 20 * 19 // 2, identities=n // 20)
     assert scored / 2.5 <= est <= 2.5 * scored, (format_bytes(scored), format_bytes(est))

@@ -1,6 +1,6 @@
 """Property-based tests (hypothesis, fixed seed): random small tables and option sets.
 
-Invariants, each checked against an independent float64 brute force written here:
+Invariants, each checked against an independent float64 brute force (here and in tests/_support.py):
 
 - mining: every triplet has the right labels, the stored distances, violation and regime of the
   DESIGN.md boundaries (hard: d_an < d_ap; semi-hard: d_ap <= d_an < d_ap + alpha; easy:
@@ -23,14 +23,15 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
+from _support import distance_of_cosine, regime_name
 
 from tripletkit._errors import TripletkitError
 from tripletkit._validate import MAX_DISTANCE
 from tripletkit.config import EvaluationConfig, MiningConfig
 from tripletkit.evaluate import score
-from tripletkit.losses import REGIMES
 from tripletkit.metrics.verification import verify_all_pairs
 from tripletkit.mining import mine
+from tripletkit.mining.regimes import REGIMES
 from tripletkit.tables.embeddings import EmbeddingTable
 from _support import four_squares, pair_scores
 
@@ -75,20 +76,6 @@ def _unit64(X):
     return EmbeddingTable.from_arrays(np.arange(len(X)), np.zeros(len(X), np.int64), X).embeddings.astype(np.float64)
 
 
-def _dist(cos, distance):
-    sq = np.maximum(2.0 - 2.0 * cos, 0.0)
-    return sq if distance == "squared" else np.sqrt(sq)
-
-
-def _regime(d_ap, d_an, margin):
-    """DESIGN.md boundaries, written out again here."""
-    if d_an < d_ap:
-        return "hard"
-    if d_an < d_ap + margin:
-        return "semi-hard"
-    return "easy"
-
-
 def _near_boundary(d_ap, d_an, margin):
     return abs(d_an - d_ap) < BOUNDARY or abs(d_an - (d_ap + margin)) < BOUNDARY
 
@@ -116,7 +103,7 @@ def test_mined_triplets_satisfy_the_regime_definitions(table, options):
     m = options["margin"]
     U = _unit64(X)
     cos = U @ U.T  # independent float64 products of the stored unit rows
-    D = _dist(cos, options["distance"])
+    D = distance_of_cosine(cos, options["distance"])
     a, p, q = t["anchor"], t["positive"], t["negative"]
     n_trip = a.size
     assert s.n_triplets == n_trip == sum(s.regimes.values())
@@ -137,7 +124,7 @@ def test_mined_triplets_satisfy_the_regime_definitions(table, options):
         dap, dan = D[a[i], p[i]], D[a[i], q[i]]
         if _near_boundary(dap, dan, m):
             continue
-        assert stored == _regime(dap, dan, m), (i, dap, dan, m)
+        assert stored == regime_name(dap, dan, m), (i, dap, dan, m)
     assert counts == s.regimes
     active = float(np.sum(t["violation"] > 0)) / n_trip if n_trip else None
     assert (s.active_fraction is None) == (active is None)
@@ -168,7 +155,7 @@ def _check_counts_per_pair(s, labels, D, m, options):
             dan = D[a, others]
             if any(_near_boundary(dap, x, m) for x in dan):
                 continue
-            cand = np.sort(dan[[_regime(dap, x, m) == r for x in dan]])
+            cand = np.sort(dan[[regime_name(dap, x, m) == r for x in dan]])
             got = np.sort(t["d_an"][sel][key == ap].astype(np.float64))
             assert got.size == min(k, cand.size), (r, a, p)
             if options["select"] == "hardest":

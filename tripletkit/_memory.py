@@ -25,7 +25,7 @@ from pathlib import Path
 from ._errors import TripletkitError
 
 __all__ = ["ENV_LIMIT", "USABLE_SHARE", "available_bytes", "estimate_and_guard", "format_bytes",
-           "mining_bytes", "scoring_bytes"]
+           "scoring_bytes"]
 
 #: Environment variable that sets the available memory in MB (overrides detection).
 ENV_LIMIT = "TRIPLETKIT_MEMORY_LIMIT_MB"
@@ -34,13 +34,6 @@ ENV_LIMIT = "TRIPLETKIT_MEMORY_LIMIT_MB"
 USABLE_SHARE = 0.8
 
 _MB = 2**20
-# Bytes of bookkeeping per neighbour of a search block: the rule of tripletkit.index.query_block_rows.
-_BYTES_PER_NEIGHBOUR = 64
-# Per-row state of the miner (ids, label codes, positions, counters: a few int64 arrays).
-_MINER_BYTES_PER_ROW = 48
-# One stored triplet when they are returned as arrays: 3 positions and 3 ids (int64), 3 float32,
-# an int8 regime and two labels.
-_BYTES_PER_TRIPLET = 80
 # Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
 # alive at once (measured with tracemalloc on small tables, where they dominate).
 _HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
@@ -178,7 +171,7 @@ def estimate_and_guard(what, bytes_needed, *, suggestion, available=None):
     what : str
         The run, for the message (e.g. ``"mining 1,000,000 x 128 rows"``).
     bytes_needed : int
-        Estimate from :func:`mining_bytes`, :func:`scoring_bytes` or the caller's own.
+        Estimate of the job (e.g. :func:`tripletkit.mining.plan.mining_bytes`).
     suggestion : str
         What the user can change, e.g. ``"lower --block-rows or use --index ivf"``.
     available : int, optional
@@ -221,76 +214,6 @@ def _check_sizes(**values):
     for name, value in values.items():
         if isinstance(value, bool) or not isinstance(value, int) or value < 0:
             raise ValueError(f"{name} must be a whole number >= 0, got {value!r}")
-
-
-def mining_bytes(n, d, block_rows, k, index, *, exact_below=200_000, hnsw_m=32, ivf_nlist=0,
-                 memory_mb=1024, positives_per_anchor=4, triplets=0):
-    """Estimated peak bytes of :func:`tripletkit.mining.mine` on an ``n x d`` table.
-
-    Parameters
-    ----------
-    n, d : int
-        Rows and dimension of the embedding table.
-    block_rows : int
-        Anchors per search block (0: sized from ``memory_mb`` as the miner does).
-    k : int
-        Neighbours searched first per anchor (``neighbours``).
-    index : {"exact", "ivf", "hnsw", "auto"}
-        Index kind; ``auto`` resolves with ``exact_below`` as the miner does.
-    hnsw_m, ivf_nlist : int
-        Index knobs (``ivf_nlist`` 0: about 4 sqrt(n) lists).
-    memory_mb : int
-        The miner's block budget (``memory_mb``), used when ``block_rows`` is 0.
-    positives_per_anchor : int
-        Positives per anchor (sets how many pairs the exact float64 cosines are computed for).
-    triplets : int
-        Triplets returned as arrays (``return_triplets=True``); 0 when they are only written.
-
-    Returns
-    -------
-    int
-        The table (float32), the index's own copy of the vectors (+ HNSW links, or IVF ids and
-        centroids with the slack of lists that grow by doubling), the miner's per-row state, one
-        search block of top-k results with their bookkeeping, a quarter of ``memory_mb`` for the
-        widened (range) searches of a block or, on the dense path of a poorly separated table,
-        for one dense block (at least one row against every row: up to 216 bytes a cell with
-        distance-weighted selection), the dense path's transposed float32 copy of the table
-        (exact index: counted whichever path the run takes, which is chosen at run time), the working set of
-        the exact float64 cosines (a
-        chunk of up to 16,384 pairs: both sides' rows as float32 and float64, so it grows with
-        ``d``), and the returned triplets. Checked against the
-        mining benchmark (bench/results/mining.log: 500,000 x 128 exact, about 800 MB above the
-        interpreter's own; IVF about 1.5 GB including the benchmark's data).
-    """
-    _check_sizes(n=n, d=d, block_rows=block_rows, k=k, hnsw_m=hnsw_m, ivf_nlist=ivf_nlist, memory_mb=memory_mb,
-                 positives_per_anchor=positives_per_anchor, triplets=triplets)
-    from .index import cosine_chunk_pairs, query_block_rows, resolve_kind
-    from .mining import _DENSE_WEIGHTED_CELL_BYTES
-
-    kind = resolve_kind(index, n, exact_below)
-    vectors = n * d * 4
-    if kind == "hnsw":
-        # level 0 keeps 2 * M int32 links per node; the upper levels add about 1/M of that again
-        index_bytes = vectors + int(n * 2 * hnsw_m * 4 * (1 + 1 / max(hnsw_m, 1)))
-    elif kind == "ivf":
-        nlist = ivf_nlist or max(1, int(4 * n**0.5))
-        # the inverted lists grow by doubling while rows are added: up to twice the vectors and ids
-        index_bytes = 2 * (vectors + n * 8) + nlist * d * 4
-    else:
-        index_bytes = vectors
-    kk = max(1, min(k, n))
-    block = query_block_rows(max(n, 1), kk, memory_mb, block_rows)
-    # results of the widened (range) searches of a block: sized like the top-k block, a quarter
-    # of the budget
-    widened = memory_mb * _MB // 4
-    # the dense path uses the same quarter for one block, but a block has at least one row
-    widened = max(widened, _DENSE_WEIGHTED_CELL_BYTES * n)
-    transposed = vectors if kind == "exact" else 0
-    # one chunk of tripletkit.index.exact_cosine: both sides as float32 and float64 (12 bytes
-    # per value and side), at most 16 MiB
-    cosines = 2 * min(cosine_chunk_pairs(d), n * positives_per_anchor) * d * 12
-    return int(vectors + index_bytes + n * _MINER_BYTES_PER_ROW + block * kk * _BYTES_PER_NEIGHBOUR
-               + widened + transposed + cosines + triplets * _BYTES_PER_TRIPLET)
 
 
 def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0, workers=None):

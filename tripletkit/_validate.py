@@ -230,12 +230,23 @@ def check_flag(value, name):
 
 
 # -- checks of mining (added by the mining room) ------------------------------------------------
-#
-#
-#
-#
-#
-#
+def margin_number(margin):
+    """``margin`` as a float if it is a finite number >= 0 (booleans refused), else an error.
+
+    The margin of a loss or a regime; :func:`check_margin` then refuses one that no pair of unit
+    vectors can reach.
+    """
+    if isinstance(margin, (bool, np.bool_)):
+        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}")
+    try:
+        value = float(margin)
+    except (TypeError, ValueError):
+        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}") from None
+    if not np.isfinite(value) or value < 0:
+        raise TripletkitError(f"margin must be a finite number >= 0, got {margin!r}")
+    return value
+
+
 # -- checks of metrics (added by the metrics room) ----------------------------------------------
 def as_scores(scores, name):
     """``scores`` as a 1-D float64 array of finite real numbers."""

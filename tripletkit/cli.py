@@ -201,8 +201,9 @@ def _run(args):
         return loss(args.triplets, args.table, margin=args.margin, distance=args.distance,
                                    soft=args.soft, table_options=_table_kwargs(args))
     if args.command == "mine":
-        from .mining import duplicates_path, mine
+        from .mining import mine
         from .tables.embeddings import EmbeddingTable, require_pairs
+        from .tables.triplets import duplicates_path
 
         cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)

@@ -11,15 +11,11 @@ margin alpha >= 0,
 - the hinge loss ``max(0, d_ap - d_an + alpha)`` (Schroff et al., 2015), or
 - the soft-margin loss ``log(1 + exp(d_ap - d_an))`` (Hermans et al., 2017), which has no margin;
 
-and falls in one of three regimes, with the boundaries stated once here and in DESIGN.md:
-
-- ``hard``: d_an < d_ap
-- ``semi-hard``: d_ap <= d_an < d_ap + alpha
-- ``easy``: d_an >= d_ap + alpha
-
-A triplet is *active* when it violates the margin, ``d_ap - d_an + alpha > 0``, i.e. when it is not
-easy. For the hinge that is exactly "the loss is non-zero"; the soft-margin loss is positive for every
-triplet, so it uses the same margin-based definition to keep active fractions comparable.
+and falls in one of three regimes, whose boundaries are stated once, in
+:mod:`tripletkit.mining.regimes`. A triplet is *active* when it violates the margin,
+``d_ap - d_an + alpha > 0``, i.e. when it is not easy. For the hinge that is exactly "the loss is
+non-zero"; the soft-margin loss is positive for every triplet, so it uses the same margin-based
+definition to keep active fractions comparable.
 
 Gradients are taken with respect to the raw (pre-normalisation) vectors, through the Jacobian of
 x -> x / ||x||, which is (I - u u^T) / ||x|| with u = x / ||x||. Everything that feeds a gradient
@@ -46,25 +42,21 @@ from pathlib import Path
 import numpy as np
 
 from ._errors import TripletkitError
-from ._validate import as_codes, as_embeddings, check_same_length, row_norms
+from ._validate import as_codes, as_embeddings, check_same_length, margin_number, row_norms
+from .mining.regimes import REGIMES, classify
 
 __all__ = [
-    "REGIMES",
     "DISTANCES",
     "BatchLoss",
     "pair_distance",
     "triplet_loss",
     "triplet_loss_grad",
-    "regime_codes",
-    "regime_of",
     "batch_all_loss",
     "batch_hard_loss",
     "score_triplets",
     "loss",
 ]
 
-#: Regime names, in code order: ``regime_codes`` returns int8 indices into this tuple.
-REGIMES = ("easy", "semi-hard", "hard")
 #: Accepted values of every ``distance`` argument.
 DISTANCES = ("squared", "euclidean")
 _REDUCTIONS = ("mean", "sum", "none")
@@ -81,18 +73,6 @@ def _check_distance(distance):
             f"distance must be 'squared' or 'euclidean', got {distance!r}; pick one of those two"
         )
     return distance
-
-
-def _check_margin(margin):
-    if isinstance(margin, (bool, np.bool_)):
-        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}")
-    try:
-        value = float(margin)
-    except (TypeError, ValueError):
-        raise TripletkitError(f"margin must be a number >= 0, got {margin!r}") from None
-    if not np.isfinite(value) or value < 0:
-        raise TripletkitError(f"margin must be a finite number >= 0, got {margin!r}")
-    return value
 
 
 def _check_flag(value, name):
@@ -133,20 +113,6 @@ def _check_same_dim(**arrays):
     if len(set(dims.values())) > 1:
         desc = ", ".join(f"{k}={v}" for k, v in dims.items())
         raise TripletkitError(f"inputs must have the same dimension, got {desc}; embed them with one model")
-
-
-def _as_distances(d, name):
-    arr = np.asarray(d)
-    real = np.issubdtype(arr.dtype, np.number) and not np.issubdtype(arr.dtype, np.complexfloating)
-    if not real:
-        raise TripletkitError(f"{name} must hold real numbers, got dtype {arr.dtype}")
-    arr = arr.astype(np.float64)
-    bad = ~np.isfinite(arr)
-    if bad.any():
-        raise TripletkitError(f"{name} has {int(bad.sum())} NaN or Inf values; distances must be finite")
-    if (arr < 0).any():
-        raise TripletkitError(f"{name} has {int((arr < 0).sum())} negative values; distances are >= 0")
-    return arr
 
 
 def _warn(message):
@@ -194,7 +160,7 @@ def _pairwise(u, distance):
 def _terms(d_ap, d_an, margin, soft):
     """Per-triplet loss, d(loss)/d(d_ap) (= -d(loss)/d(d_an)) and the active mask."""
     # (d_ap + margin) - d_an is zero or negative exactly when d_an >= d_ap + margin, so in floating
-    # point the zero-loss set of the hinge coincides with the 'easy' regime of _regime_codes.
+    # point the zero-loss set of the hinge coincides with the 'easy' regime of regimes.classify.
     violation = (d_ap + margin) - d_an
     active = violation > 0
     if soft:
@@ -205,13 +171,6 @@ def _terms(d_ap, d_an, margin, soft):
         loss = np.maximum(violation, 0.0) + 0.0  # + 0.0 turns -0.0 into 0.0
         slope = active.astype(np.float64)  # subgradient 0 at the kink
     return loss, slope, active
-
-
-def _regime_codes(d_ap, d_an, margin):
-    codes = np.zeros(np.broadcast_shapes(np.shape(d_ap), np.shape(d_an)), dtype=np.int8)
-    codes[d_an < d_ap + margin] = 1
-    codes[d_an < d_ap] = 2
-    return codes
 
 
 def _grad_from_pair_weights(weights, u, norms, dist, distance):
@@ -229,7 +188,7 @@ def _grad_from_pair_weights(weights, u, norms, dist, distance):
     return _back_through_normalise(g_u, u, norms)
 
 
-# -- public: distances, per-triplet losses, regimes ------------------------------------------
+# -- public: distances and per-triplet losses -----------------------------------------------
 def pair_distance(a, b, distance="squared"):
     """Row-wise distance between the directions of ``a`` and ``b``.
 
@@ -293,7 +252,7 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
        Re-Identification", arXiv:1703.07737, 2017.
     """
     distance = _check_distance(distance)
-    margin = _check_margin(margin)
+    margin = margin_number(margin)
     soft = _check_flag(soft, "soft")
     (ua, _), (up, _), (un, _) = _triplet_inputs(anchor, positive, negative)
     d_ap = _rowwise(ua, up, distance)[0]
@@ -330,7 +289,7 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
     taken as 0; at a zero Euclidean distance the gradient of that distance is taken as 0.
     """
     distance = _check_distance(distance)
-    margin = _check_margin(margin)
+    margin = margin_number(margin)
     soft = _check_flag(soft, "soft")
     reduction = _check_choice(reduction, "reduction", _REDUCTIONS)
     (ua, na), (up, np_), (un, nn) = _triplet_inputs(anchor, positive, negative)
@@ -360,48 +319,6 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
         _back_through_normalise(g_p, up, np_),
         _back_through_normalise(g_n, un, nn),
     )
-
-
-def regime_codes(d_ap, d_an, margin=0.2):
-    """Regime of each triplet as int8 codes into :data:`REGIMES` (0 easy, 1 semi-hard, 2 hard).
-
-    Parameters
-    ----------
-    d_ap, d_an : array-like of non-negative floats, broadcastable to one shape
-        Anchor-positive and anchor-negative distances (any one distance convention).
-    margin : float, default 0.2
-
-    Returns
-    -------
-    ndarray of int8 with the broadcast shape
-
-    Notes
-    -----
-    hard: d_an < d_ap; semi-hard: d_ap <= d_an < d_ap + margin; easy: d_an >= d_ap + margin. The
-    comparison is made in float64 with ``d_ap + margin`` computed once, the same expression the
-    hinge uses, so "easy" is exactly "hinge loss 0". With margin 0 no triplet is semi-hard.
-    """
-    margin = _check_margin(margin)
-    d_ap = _as_distances(d_ap, "d_ap")
-    d_an = _as_distances(d_an, "d_an")
-    try:
-        np.broadcast_shapes(d_ap.shape, d_an.shape)
-    except ValueError:
-        raise TripletkitError(
-            f"d_ap has shape {d_ap.shape} and d_an has shape {d_an.shape}; give one distance pair per triplet"
-        ) from None
-    return _regime_codes(d_ap, d_an, margin)
-
-
-def regime_of(d_ap, d_an, margin=0.2):
-    """Regime name of each triplet ("easy", "semi-hard" or "hard"); see :func:`regime_codes`.
-
-    Examples
-    --------
-    >>> regime_of([0.5, 0.5, 0.5], [0.25, 0.5, 0.75], margin=0.25).tolist()
-    ['hard', 'semi-hard', 'easy']
-    """
-    return np.asarray(REGIMES)[regime_codes(d_ap, d_an, margin)]
 
 
 # -- public: reductions over a labelled batch -------------------------------------------------
@@ -500,7 +417,7 @@ def batch_all_loss(X, labels, margin=0.2, distance="squared", soft=False, *, ave
        Re-Identification", arXiv:1703.07737, 2017.
     """
     distance = _check_distance(distance)
-    margin = _check_margin(margin)
+    margin = margin_number(margin)
     soft = _check_flag(soft, "soft")
     average = _check_choice(average, "average", _AVERAGES)
     block_size = _check_block(block_size)
@@ -574,7 +491,7 @@ def batch_hard_loss(X, labels, margin=0.2, distance="squared", soft=False):
        Re-Identification", arXiv:1703.07737, 2017.
     """
     distance = _check_distance(distance)
-    margin = _check_margin(margin)
+    margin = margin_number(margin)
     soft = _check_flag(soft, "soft")
     u, norms, pos, neg = _batch_inputs(X, labels)
     n = u.shape[0]
@@ -652,7 +569,7 @@ def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, di
     :func:`triplet_loss` on the same vectors.
     """
     distance = _check_distance(distance)
-    margin = _check_margin(margin)
+    margin = margin_number(margin)
     soft = _check_flag(soft, "soft")
     a_ids = _as_id_column(anchor_ids, "anchor ids")
     p_ids = _as_id_column(positive_ids, "positive ids")
@@ -688,7 +605,7 @@ def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, di
         loss, _, act = _terms(d_ap, d_an, margin, soft)
         total += float(loss.sum())
         active += int(act.sum())
-        counts += np.bincount(_regime_codes(d_ap, d_an, margin), minlength=len(REGIMES))
+        counts += np.bincount(classify(d_ap, d_an, margin), minlength=len(REGIMES))
     return {"triplets": int(t), "mean_loss": total / t, "active_fraction": active / t,
             "regimes": dict(zip(REGIMES, counts.tolist()))}
 

@@ -22,10 +22,10 @@ from tripletkit.losses import (
     batch_all_loss,
     batch_hard_loss,
     pair_distance,
-    regime_of,
     triplet_loss,
     triplet_loss_grad,
 )
+from tripletkit.mining.regimes import regime_of
 
 FACENET_MARGIN = 0.2  # Schroff et al., FaceNet, CVPR 2015: "the margin alpha is set to 0.2"
 

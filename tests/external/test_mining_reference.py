@@ -1,4 +1,4 @@
-"""tripletkit.mining and tripletkit.index against outside references.
+"""tripletkit.mining (the miner, its index and its samplers) against outside references.
 
 Each test names its source in a comment: scikit-learn's NearestNeighbors as an independent nearest
 neighbour implementation, scipy's distance functions, the regime definitions of FaceNet, and the
@@ -8,13 +8,14 @@ distance distribution on the sphere that distance-weighted sampling (Wu et al. 2
 import numpy as np
 import pytest
 from scipy import stats
-from scipy.integrate import quad
 from scipy.spatial.distance import cdist
 from sklearn.datasets import load_digits
 from sklearn.neighbors import NearestNeighbors
 
-from tripletkit.index import build_index
-from tripletkit.mining import REGIMES, _choose, distance_log_weights, mine
+from tripletkit.mining import mine
+from tripletkit.mining.index import build_index
+from tripletkit.mining.regimes import REGIMES
+from tripletkit.mining.select import choose, distance_log_weights
 from tripletkit.tables.embeddings import EmbeddingTable
 
 
@@ -134,8 +135,8 @@ def test_distance_weighted_draws_follow_the_target_weights():
     draws = 40_000
     lo = np.zeros(draws, dtype=np.int64)
     hi = np.full(draws, d.size, dtype=np.int64)
-    owner, idx = _choose("distance-weighted", lo, hi, 1, (np.arange(draws), 0, 1),
-                         (np.uint64(11), np.uint64(12)), rows=np.arange(d.size), logw=logw)
+    owner, idx = choose("distance-weighted", lo, hi, 1, (np.arange(draws), 0, 1),
+                        (np.uint64(11), np.uint64(12)), rows=np.arange(d.size), logw=logw)
     assert np.array_equal(owner, np.arange(draws))
     counts = np.bincount(idx, minlength=d.size)
     assert stats.chisquare(counts, draws * p).pvalue > 1e-3

@@ -107,7 +107,7 @@ import pyarrow.parquet as pq
 from .._errors import TripletkitError, TripletkitWarning
 from .._io import PARQUET_READ, atomic_path, atomic_paths, check_not_input, check_output, parquet_error, parquet_files
 from ..config import ComputeConfig
-from ..index import SearchIndex, _csr, build_index
+from ..mining.index import Neighbours, SearchIndex, build_index
 from ..tables.embeddings import EmbeddingTable
 
 __all__ = ["LOCAL_CLUSTER", "PART_ROWS", "DaskEngine", "cluster", "mine_on_cluster", "score_on_cluster"]
@@ -266,7 +266,7 @@ def _refuse_unsupported(what, config, rows=None):
     ``what`` is ``"mine"`` or ``"score"``; ``rows`` is the row count ``index = auto`` resolves
     on (None: unknown, and the driver refuses an approximate index itself when it resolves to one).
     """
-    from ..index import resolve_kind
+    from ..mining.index import resolve_kind
 
     if what == "mine":
         kind = config.index
@@ -310,7 +310,7 @@ def _shards(client, compute):
 
 def _thread_limits():
     """BLAS and OpenMP thread counts of this process, by library (the workers run with the same)."""
-    from threadpoolctl import threadpool_info  # faiss, its BLAS and OpenMP are loaded by .index above
+    from threadpoolctl import threadpool_info  # faiss, its BLAS and OpenMP are loaded by .mining.index above
 
     return {info["prefix"]: int(info["num_threads"]) for info in threadpool_info()}
 
@@ -684,10 +684,10 @@ class _ShardedIndex(SearchIndex):
             I = np.concatenate([p[4][1] + off for p, off in zip(parts, self.offsets)], axis=1)
             order = np.argsort(-D, axis=1, kind="stable")[:, :k]
             D, I = np.take_along_axis(D, order, axis=1), np.take_along_axis(I, order, axis=1)
-            topk = (D, I, self._bound(D, I, k))
+            topk = (D, I, self.topk_bound(D, I, k))
         # grouped by query (the order within a query does not matter to the miner, which sorts)
         order = np.argsort(qs, kind="stable")
-        return _csr(qs[order], rs[order], ss[order], q, widened, topk)
+        return Neighbours.from_entries(qs[order], rs[order], ss[order], q, widened, topk)
 
 
 def _build_sharded(client, files, options, table, parts, folder, cancelled, no_workers_timeout, embeddings, kind,
@@ -723,9 +723,9 @@ class _PartWriter:
     ``part_rows`` triplets each (a multiple of the row group size), rows in the single file's order."""
 
     def __init__(self, folder, table, metadata, part_rows=PART_ROWS):
-        from ..mining import _TripletWriter
+        from ..tables.triplets import TripletWriter
 
-        self._writer_class = _TripletWriter
+        self._writer_class = TripletWriter
         self.folder = None if folder is None else Path(folder)
         self.table, self.metadata = table, metadata
         self.part_rows = int(part_rows)
@@ -733,7 +733,7 @@ class _PartWriter:
 
     @property
     def writer(self):
-        """The open ParquetWriter, if any (what ``mining._close_quietly`` closes)."""
+        """The open ParquetWriter, if any (what the mining run closes when it fails)."""
         return None if self.current is None else self.current.writer
 
     def _open(self):
@@ -770,7 +770,7 @@ class _PartWriter:
 def _mine_task(path, options, expect, config, folder, parts, part_rows, return_triplets, no_workers_timeout):
     from distributed import worker_client
 
-    from ..mining import _mine_table
+    from ..mining.run import mine_table
 
     t0, c0 = time.perf_counter(), time.thread_time()
     cancelled = _watch_driver()
@@ -790,9 +790,9 @@ def _mine_task(path, options, expect, config, folder, parts, part_rows, return_t
 
     with worker_client() as client, warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        summary = _mine_table(table, config, attempt, None if attempt is None else attempt / "duplicates.parquet",
-                              quiet=True, return_triplets=return_triplets, build=build,
-                              writer_class=functools.partial(_PartWriter, part_rows=part_rows))
+        summary = mine_table(table, config, attempt, None if attempt is None else attempt / "duplicates.parquet",
+                             quiet=True, return_triplets=return_triplets, build=build,
+                             writer_class=functools.partial(_PartWriter, part_rows=part_rows))
     summary.details["driver_seconds"] = time.perf_counter() - t0
     summary.details["driver_cpu_seconds"] = time.thread_time() - c0
     if built:
@@ -839,10 +839,12 @@ def mine_on_cluster(source, out=None, *, config=None, compute, force=False, quie
     MiningSummary
         As in one process; ``details`` adds ``shards``, ``parts`` and ``scheduler``.
     """
-    from ..mining import MiningConfig, _config, duplicates_path
+    from ..config import MiningConfig
+    from ..mining import resolve_config
+    from ..tables.triplets import duplicates_path
 
     t0 = time.perf_counter()
-    cfg = _config(config, {})
+    cfg = resolve_config(config, {})
     if not isinstance(cfg, MiningConfig):
         raise TripletkitError(f"config must be a MiningConfig (or None), got {type(cfg).__name__}")
     if int(part_rows) < 1:

@@ -1,12 +1,14 @@
-"""tripletkit.index: the widening search against its brute-force twin, exact cosines, index kinds."""
+"""tripletkit.mining.index: the widening search against its brute-force twin, index kinds, the recall
+estimate."""
 
 import faiss
 import numpy as np
 import pytest
 
 from tripletkit._errors import TripletkitError
-from tripletkit.index import (_count_above, build_index, estimate_recall, exact_cosine, faiss_threads,
-                              query_block_rows, resolve_kind, scan_within, score_slack)
+from tripletkit.mining.cosines import score_slack
+from tripletkit.mining.index import (Neighbours, _count_above, build_index, estimate_recall, faiss_threads,
+                                     resolve_kind, scan_within)
 
 
 def unit_rows(rng, n, d, clusters=0):
@@ -21,18 +23,6 @@ def unit_rows(rng, n, d, clusters=0):
 
 def as_sets(nb, q):
     return [set(nb.rows[nb.lims[i]:nb.lims[i + 1]].tolist()) for i in range(q)]
-
-
-def test_exact_cosine_is_float64_exact_symmetric_and_batch_independent(rng):
-    X = unit_rows(rng, 300, 24)
-    a = rng.integers(0, 300, 5000)
-    b = rng.integers(0, 300, 5000)
-    c = exact_cosine(X, a, b)
-    X64 = X.astype(np.float64)
-    np.testing.assert_allclose(c, np.sum(X64[a] * X64[b], axis=1), rtol=0, atol=1e-14)
-    assert np.array_equal(c, exact_cosine(X, b, a))  # bit for bit
-    assert np.array_equal(c[1234:1300], exact_cosine(X, a[1234:1300], b[1234:1300]))
-    assert exact_cosine(X, a[:0], b[:0]).shape == (0,)
 
 
 @pytest.mark.parametrize("k", [1, 7, 300])
@@ -80,6 +70,22 @@ def test_top_k_trust_bound(rng):
     for i in range(10):
         # every row with exact cosine above the bound is among the top-k
         assert set(np.flatnonzero(C[i] > bound[i]).tolist()) <= set(I[i].tolist())
+    assert np.array_equal(index.topk_bound(D, I, 5), bound)
+    # a top-k of every row holds every row; so does one the index could not fill
+    D_all, I_all = index.search(X[:3], 200)
+    assert np.all(index.topk_bound(D_all, I_all, 200) == -np.inf)
+    I_short = I[:2].copy()
+    I_short[0, -1] = -1
+    assert index.topk_bound(D[:2], I_short, 5)[0] == -np.inf and np.isfinite(index.topk_bound(D[:2], I_short, 5)[1])
+
+
+def test_neighbours_from_entries():
+    nb = Neighbours.from_entries(np.array([0, 0, 2]), np.array([5, 7, 1]), np.array([0.9, 0.8, 0.5]), 4, widened=1)
+    assert nb.lims.tolist() == [0, 2, 2, 3, 3]
+    assert nb.rows.dtype == np.int64 and nb.rows.tolist() == [5, 7, 1]
+    assert nb.scores.dtype == np.float32 and nb.widened == 1 and nb.topk is None
+    empty = Neighbours.from_entries(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.float32), 2)
+    assert empty.lims.tolist() == [0, 0, 0] and empty.rows.size == 0
 
 
 def test_hnsw_doubling_and_ivf_range_widen(rng):
@@ -127,15 +133,12 @@ def test_estimate_recall(rng):
     assert r2 == relevant and 0 <= f2 < relevant
 
 
-def test_resolve_kind_and_block_rows():
+def test_resolve_kind():
     assert resolve_kind("auto", 199_999, 200_000) == "exact"
     assert resolve_kind("auto", 200_000, 200_000) == "ivf"
     assert resolve_kind("hnsw", 10, 200_000) == "hnsw"
     with pytest.raises(TripletkitError, match="index must be one of"):
         resolve_kind("annoy", 10, 5)
-    assert query_block_rows(1000, 100, 1024, requested=7) == 7
-    assert query_block_rows(100, 100, 1024) == 100
-    assert 256 <= query_block_rows(10**6, 100, 16) <= 16384
 
 
 def test_faiss_threads_restores():

@@ -11,17 +11,15 @@ import pytest
 from tripletkit._errors import TripletkitError
 from tripletkit.losses import (
     DISTANCES,
-    REGIMES,
     BatchLoss,
     batch_all_loss,
     batch_hard_loss,
     pair_distance,
-    regime_codes,
-    regime_of,
     score_triplets,
     triplet_loss,
     triplet_loss_grad,
 )
+from tripletkit.mining.regimes import REGIMES, regime_codes, regime_of
 from tripletkit.tables.embeddings import EmbeddingTable
 
 VARIANTS = [(d, s) for d in DISTANCES for s in (False, True)]
@@ -172,26 +170,6 @@ def test_exact_boundaries_on_vectors():
     # The kink itself gets subgradient 0 (documented): loss 0, no gradient.
     value, ga, gp, gn = triplet_loss_grad(A[1:], P[1:], N[1:], margin=2.0)
     assert value == 0.0 and not ga.any() and not gp.any() and not gn.any()
-
-
-def test_regime_boundaries_on_dyadic_distances():
-    # Dyadic numbers are exact in binary, so the boundaries are hit exactly.
-    # d_ap = 0.5, margin 0.25: d_an 0.25 hard; 0.5 (= d_ap) semi-hard; 0.625 semi-hard;
-    # 0.75 (= d_ap + margin) easy; 1.0 easy.
-    d_an = [0.25, 0.5, 0.625, 0.75, 1.0]
-    assert regime_of(0.5, d_an, 0.25).tolist() == ["hard", "semi-hard", "semi-hard", "easy", "easy"]
-    assert regime_codes(0.5, d_an, 0.25).tolist() == [2, 1, 1, 0, 0]
-    # margin 0: nothing is semi-hard; d_an == d_ap is easy.
-    assert regime_of([0.5, 0.5], [0.25, 0.5], 0.0).tolist() == ["hard", "easy"]
-    # broadcasting: one d_ap per anchor against several candidate negatives
-    codes = regime_codes(np.array([[0.5], [1.0]]), np.array([[0.25, 0.5, 1.0]]), 0.25)
-    assert codes.shape == (2, 3) and codes.tolist() == [[2, 1, 0], [2, 2, 1]]
-
-
-def test_regimes_tuple_and_codes_are_stable():
-    # The mining module imports these; their order is part of the contract.
-    assert REGIMES == ("easy", "semi-hard", "hard")
-    assert [REGIMES.index(r) for r in REGIMES] == [0, 1, 2]
 
 
 def test_easy_regime_is_exactly_zero_hinge(rng):
@@ -588,17 +566,6 @@ def test_array_errors(rng):
         batch_hard_loss(A, np.array([0, None, 1], dtype=object))
     with pytest.raises(TripletkitError, match=r"labels must be 1-D, got shape \(3, 1\)"):
         batch_hard_loss(A, [[0], [0], [1]])
-
-
-def test_regime_errors():
-    with pytest.raises(TripletkitError, match=r"d_an has 1 negative values; distances are >= 0"):
-        regime_of([0.5], [-0.1])
-    with pytest.raises(TripletkitError, match=r"d_ap has 1 NaN or Inf values; distances must be finite"):
-        regime_codes([np.nan], [0.1])
-    with pytest.raises(TripletkitError, match=r"d_ap must hold real numbers, got dtype <U3"):
-        regime_codes(["far"], [0.1])
-    with pytest.raises(TripletkitError, match=r"d_ap has shape \(2,\) and d_an has shape \(3,\); give one"):
-        regime_codes([0.1, 0.2], [0.1, 0.2, 0.3])
 
 
 def test_huge_finite_raw_outputs_give_the_loss_of_their_directions(rng):

@@ -1,30 +1,17 @@
-"""faiss index choice, blocked search with widening, exact float64 scores and the recall estimate.
+"""faiss indexes over the table's unit rows, the widening search the miner relies on, and its recall.
 
-Every index here holds the L2-normalised float32 rows of an :class:`~tripletkit.table.EmbeddingTable`
-and scores by inner product, which on unit vectors is the cosine. Three kinds:
+Every index holds the L2-normalised float32 rows and scores by inner product, the cosine: ``exact``
+(``faiss.IndexFlatIP``, the reference), ``ivf`` (``faiss.IndexIVFFlat``, spherical k-means
+centroids trained on a seeded sample; only ``nprobe`` lists are scanned) and ``hnsw``
+(``faiss.IndexHNSWFlat``, a graph walk). ``auto`` is ``exact`` below ``exact_below`` rows and
+``ivf`` from there on: IVF is deterministic to build and search, unlike a multi-threaded HNSW
+build, so ``auto`` keeps byte-identical outputs. :meth:`SearchIndex.within` returns every row
+above each query's own cosine threshold, never truncated: a top-k search first, widened by a range
+search (exact, ivf) or by doubling k (hnsw) where the k-th neighbour is still above the threshold.
 
-- ``exact``: ``faiss.IndexFlatIP``, a brute-force scan; the reference for everything else;
-- ``ivf``: ``faiss.IndexIVFFlat`` with inner product, its coarse centroids trained (spherical
-  k-means, seeded) on a seeded sample of the rows; approximate: only ``nprobe`` of ``nlist`` lists
-  are scanned per query;
-- ``hnsw``: ``faiss.IndexHNSWFlat`` with ``METRIC_INNER_PRODUCT``; approximate (a graph walk).
-
-``auto`` picks ``exact`` below ``exact_below`` rows (default 200,000: an exact self-search of that
-many 128-d rows takes minutes on a laptop CPU, and it grows with the square of the rows) and
-``ivf`` from there on (IVF is deterministic to build and search, unlike a multi-threaded HNSW
-build, so ``auto`` keeps byte-identical outputs).
-
-The one search the miner needs is :meth:`SearchIndex.within`: every row whose cosine with a query
-exceeds that query's own threshold, never silently truncated. It starts with a top-k search; a
-query whose k-th neighbour still lies above its threshold is widened, by a faiss range search
-(``exact``, ``ivf``) or by doubling k (``hnsw``).
-
-float32 scores from faiss differ from exact values by a few 1e-7 (rounding in a sum of ``d``
-products), so thresholds are applied with a :func:`score_slack` safety band and the caller decides
-membership with :func:`exact_cosine`, a float64 dot product computed in a fixed order.
-
-faiss threads: nothing here changes faiss's global thread count; :func:`faiss_threads` does it
-for the duration of a ``with`` block when the caller asks explicitly.
+faiss's float32 scores only pre-select, within :func:`~tripletkit.mining.cosines.score_slack`;
+callers decide membership on exact float64 cosines. Nothing here changes faiss's global thread
+count except :func:`faiss_threads`, for the duration of a ``with`` block.
 """
 
 from __future__ import annotations
@@ -36,131 +23,17 @@ from dataclasses import dataclass
 import faiss
 import numpy as np
 
-from ._errors import TripletkitError
+from .._errors import TripletkitError
+from .cosines import exact_cosine, exact_scores, score_slack
 
-__all__ = [
-    "KINDS",
-    "SearchIndex",
-    "Neighbours",
-    "resolve_kind",
-    "build_index",
-    "score_slack",
-    "exact_cosine",
-    "exact_cosine_rows",
-    "exact_scores",
-    "scan_within",
-    "estimate_recall",
-    "faiss_threads",
-    "query_block_rows",
-]
+__all__ = ["KINDS", "SearchIndex", "Neighbours", "resolve_kind", "build_index", "scan_within", "estimate_recall",
+           "faiss_threads"]
 
 #: Index kinds that :func:`build_index` builds (``auto`` resolves to one of them).
 KINDS = ("exact", "ivf", "hnsw")
 
-# Rows of float64 work per chunk in exact_cosine (two gathered (chunk, d) matrices).
-# Working set of one chunk of exact_cosine: both sides' rows gathered as float32 and copied to
-# float64 (24 bytes per pair and dimension); 16 MiB whatever the dimension.
-_COSINE_CHUNK_BYTES = 1 << 24
-
-
-def cosine_chunk_pairs(d):
-    """Pairs per chunk of :func:`exact_cosine` for dimension ``d`` (at least 64)."""
-    return int(max(64, _COSINE_CHUNK_BYTES // (24 * max(1, int(d)))))
-# Cells per tile of exact_cosine_rows (256 KiB of float64: fits a core's L2 cache).
-_ROWS_TILE_CELLS = 1 << 15
 # Most queries passed to one faiss range search: large enough for BLAS efficiency.
 _RANGE_CHUNK_MAX = 4096
-
-
-def score_slack(dim):
-    """Bound on |faiss float32 inner product - exact inner product| for unit rows of dimension ``dim``.
-
-    A float32 sum of ``d`` products of unit vectors is off by at most about ``d * 2**-24`` in any
-    summation order (the standard rounding-error bound gamma_d * sum |x_i y_i| <= gamma_d for unit
-    vectors; Higham, "Accuracy and Stability of Numerical Algorithms", SIAM 2002, Sec. 3.1). Twice
-    that plus 1e-6 covers the rounding of the stored unit rows and of the output.
-    """
-    return 2.0 * dim * 2.0 ** -24 + 1e-6
-
-
-def exact_cosine(embeddings, a, b):
-    """Float64 inner products of row pairs ``(a[i], b[i])``, summed in a fixed order.
-
-    Parameters
-    ----------
-    embeddings : ndarray of float32, shape (n, d)
-    a, b : ndarray of int64, shape (m,)
-        Row positions.
-
-    Returns
-    -------
-    ndarray of float64, shape (m,)
-
-    Notes
-    -----
-    The products are accumulated dimension by dimension (j = 0, 1, ..., d-1) with separate
-    float64 multiplications and additions, so the value of a pair does not depend on which batch
-    it is computed in, on memory alignment, or on the order of the pair (a.b == b.a bit for bit).
-    That is what keeps outputs independent of block sizes.
-    """
-    a = np.asarray(a, dtype=np.int64)
-    b = np.asarray(b, dtype=np.int64)
-    out = np.empty(a.shape[0], dtype=np.float64)
-    d = embeddings.shape[1]
-    chunk = cosine_chunk_pairs(d)
-    for s in range(0, a.shape[0], chunk):
-        e = min(s + chunk, a.shape[0])
-        at = np.ascontiguousarray(embeddings[a[s:e]].T, dtype=np.float64)
-        bt = np.ascontiguousarray(embeddings[b[s:e]].T, dtype=np.float64)
-        acc = at[0] * bt[0]
-        for j in range(1, d):
-            acc += at[j] * bt[j]
-        out[s:e] = acc
-    return out
-
-
-def exact_cosine_rows(embeddings, rows, transposed=None):
-    """Float64 inner products of ``rows`` with every row: the dense twin of :func:`exact_cosine`.
-
-    Parameters
-    ----------
-    embeddings : ndarray of float32, shape (n, d)
-    rows : ndarray of int64, shape (m,)
-        Row positions.
-    transposed : ndarray of float32, shape (d, n), optional
-        ``embeddings.T`` as a C-contiguous array (pass it when calling repeatedly).
-
-    Returns
-    -------
-    ndarray of float64, shape (m, n)
-        Entry ``[i, j]`` equals ``exact_cosine(embeddings, [rows[i]], [j])`` bit for bit: the same
-        exact float64 products (of float32 values), added dimension by dimension in the same order.
-    """
-    XT = np.ascontiguousarray(embeddings.T) if transposed is None else transposed
-    A = np.asarray(embeddings[np.asarray(rows, dtype=np.int64)], dtype=np.float64)
-    m, (d, n) = A.shape[0], XT.shape
-    out = np.empty((m, n), dtype=np.float64)
-    # Work in tiles of about _ROWS_TILE_CELLS cells (whole rows, or one row cut into column
-    # pieces) so that the d passes over a tile stay in cache: 2-3x faster than whole blocks.
-    rt = max(1, _ROWS_TILE_CELLS // max(n, 1))
-    ct = n if rt > 1 else _ROWS_TILE_CELLS
-    tmp = np.empty(min(rt, m) * min(ct, n), dtype=np.float64)
-    for r0 in range(0, m, rt):
-        r1 = min(m, r0 + rt)
-        for c0 in range(0, n, ct):
-            c1 = min(n, c0 + ct)
-            o = out[r0:r1, c0:c1]
-            t = tmp[:(r1 - r0) * (c1 - c0)].reshape(r1 - r0, c1 - c0)
-            np.multiply(A[r0:r1, 0:1], XT[0, c0:c1], out=o, dtype=np.float64)
-            for j in range(1, d):
-                np.multiply(A[r0:r1, j:j + 1], XT[j, c0:c1], out=t, dtype=np.float64)
-                o += t
-    return out
-
-
-def exact_scores(embeddings, queries):
-    """float32 inner products of ``queries`` (q, d) with every row: a (q, n) matrix (one BLAS call)."""
-    return queries @ embeddings.T
 
 
 def resolve_kind(kind, n, exact_below):
@@ -170,16 +43,6 @@ def resolve_kind(kind, n, exact_below):
     if kind not in KINDS:
         raise TripletkitError(f"index must be one of auto, {', '.join(KINDS)}; got {kind!r}")
     return kind
-
-
-def query_block_rows(n, k, memory_mb, requested=0):
-    """Queries per search block: ``requested`` if given, else sized so one block's top-k results
-    and their bookkeeping (about 64 bytes per neighbour) fit in a quarter of ``memory_mb``."""
-    if requested:
-        return int(max(1, min(requested, n)))
-    budget = memory_mb * 2 ** 20 // 4
-    rows = budget // max(1, 64 * k)
-    return int(max(1, min(n, max(256, min(rows, 16384)))))
 
 
 @contextlib.contextmanager
@@ -221,6 +84,32 @@ class Neighbours:
     scores: np.ndarray
     widened: int = 0
     topk: tuple | None = None
+
+    @classmethod
+    def from_entries(cls, query_numbers, rows, scores, n_queries, widened=0, topk=None):
+        """Neighbours of ``n_queries`` queries from their entries, grouped by query.
+
+        Parameters
+        ----------
+        query_numbers : ndarray of int, shape (m,)
+            Query (in ``[0, n_queries)``) of each entry, ascending.
+        rows : ndarray of int, shape (m,)
+            Row position of each entry.
+        scores : ndarray of float32, shape (m,)
+            faiss score of each entry.
+        n_queries : int
+        widened : int, default 0
+        topk : tuple, optional
+            As the attributes of the same name.
+
+        Returns
+        -------
+        Neighbours
+        """
+        lims = np.zeros(n_queries + 1, dtype=np.int64)
+        np.cumsum(np.bincount(query_numbers, minlength=n_queries), out=lims[1:])
+        return cls(lims=lims, rows=np.asarray(rows, dtype=np.int64), scores=np.asarray(scores, dtype=np.float32),
+                   widened=int(widened), topk=topk)
 
 
 class SearchIndex:
@@ -268,7 +157,7 @@ class SearchIndex:
             widened += nb.widened
         qs, rs, ss = np.concatenate(parts_q), np.concatenate(parts_r), np.concatenate(parts_s)
         order = np.lexsort((rs, qs))
-        return _csr(qs[order], rs[order], ss[order], q, widened)
+        return Neighbours.from_entries(qs[order], rs[order], ss[order], q, widened)
 
     def within_pieces(self, queries, thresholds, k, *, memory_mb=1024, keep_topk=False):
         """Yield ``(sel, Neighbours)`` pieces: every row above each query's threshold, never truncated.
@@ -292,9 +181,10 @@ class SearchIndex:
             Positions (into ``queries``) of the queries this piece answers; every query is in
             exactly one piece.
         nb : Neighbours
-            Their rows, grouped by query (in no particular order within a query). For ``exact``: a superset of the rows with exact
-            cosine > threshold holding only rows with faiss score >= threshold - slack. For
-            ``ivf``/``hnsw``: the same as far as the approximate index finds them.
+            Their rows, grouped by query (in no particular order within a query). For
+            ``exact``: a superset of the rows with exact cosine > threshold holding only rows
+            with faiss score >= threshold - slack. For ``ivf``/``hnsw``: the same as far as the
+            approximate index finds them.
 
         Notes
         -----
@@ -305,7 +195,7 @@ class SearchIndex:
         thresholds = np.asarray(thresholds, dtype=np.float64)
         k = int(min(max(1, k), self.n))
         D, I = self.search(queries, k)
-        bound = self._bound(D, I, k)
+        bound = self.topk_bound(D, I, k)
         need = bound > thresholds
         done = np.flatnonzero(~need)
         yield done, _from_dense(D[done], I[done], thresholds[done] - self.slack,
@@ -320,9 +210,12 @@ class SearchIndex:
                                             memory_mb)
 
     # -- widening ----------------------------------------------------------------------------
-    def _bound(self, D, I, k):
-        """Per query, the cosine above which every row is in the top-k (rows missing from a top-k
-        have a float32 score <= the k-th score, so an exact cosine <= k-th + slack)."""
+    def topk_bound(self, D, I, k):
+        """Per query, the cosine above which every row is in a top-``k`` result ``(D, I)``.
+
+        A row missing from a top-k has a float32 score <= the k-th score, so an exact cosine <=
+        the k-th score + slack; ``-inf`` when the top-k holds every row (or all the index offers).
+        """
         if k >= self.n:
             return np.full(D.shape[0], -np.inf)
         bound = D[:, -1].astype(np.float64) + self.slack
@@ -346,7 +239,7 @@ class SearchIndex:
             counts = np.diff(lims).astype(np.int64)
             owner = np.repeat(np.arange(sel.size, dtype=np.int64), counts)
             ok = D >= low[owner]
-            yield sel, _csr(owner[ok], I[ok], D[ok], sel.size, sel.size)
+            yield sel, Neighbours.from_entries(owner[ok], I[ok], D[ok], sel.size, sel.size)
             widest = int(counts.max()) if counts.size else 0
             chunk = int(max(chunk, min(_RANGE_CHUNK_MAX, budget // (64 * max(1, 2 * widest)))))
 
@@ -360,7 +253,7 @@ class SearchIndex:
             for s in range(0, todo.size, chunk):
                 sel = todo[s:s + chunk]
                 D, I = self.search(queries[sel], kk)
-                ok = self._bound(D, I, kk) <= thresholds[sel]
+                ok = self.topk_bound(D, I, kk) <= thresholds[sel]
                 if ok.any():
                     fin = sel[ok]
                     yield fin, _from_dense(D[ok], I[ok], thresholds[fin] - self.slack, widened=fin.size)
@@ -373,17 +266,10 @@ def _piece_rows(n, memory_mb):
     return int(max(1, min(_RANGE_CHUNK_MAX, memory_mb * 2 ** 20 // (64 * n))))
 
 
-def _csr(qs, rs, ss, q, widened=0, topk=None):
-    lims = np.zeros(q + 1, dtype=np.int64)
-    np.cumsum(np.bincount(qs, minlength=q), out=lims[1:])
-    return Neighbours(lims=lims, rows=np.asarray(rs, dtype=np.int64),
-                      scores=np.asarray(ss, dtype=np.float32), widened=int(widened), topk=topk)
-
-
 def _from_dense(D, I, low, widened=0, topk=None):
     """CSR of the entries of a (q, k) top-k result with score >= ``low`` (per query)."""
     keep = (I >= 0) & (D >= low[:, None])
-    return _csr(np.nonzero(keep)[0], I[keep], D[keep], D.shape[0], widened, topk)
+    return Neighbours.from_entries(np.nonzero(keep)[0], I[keep], D[keep], D.shape[0], widened, topk)
 
 
 def scan_within(embeddings, queries, thresholds, *, memory_mb=1024):
@@ -407,7 +293,7 @@ def scan_within(embeddings, queries, thresholds, *, memory_mb=1024):
     qs = np.concatenate(parts_q) if parts_q else np.zeros(0, np.int64)
     rs = np.concatenate(parts_r) if parts_r else np.zeros(0, np.int64)
     ss = np.concatenate(parts_s) if parts_s else np.zeros(0, np.float32)
-    return _csr(qs, rs, ss, q)
+    return Neighbours.from_entries(qs, rs, ss, q)
 
 
 def build_index(embeddings, kind="exact", *, nlist=0, nprobe=32, hnsw_m=32, ef_search=128,
