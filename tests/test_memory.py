@@ -6,11 +6,10 @@ The mining estimate is tested with the mining plan (tests/mining/test_plan.py).
 """
 
 import pytest
-from _support import grouped_rows, traced_peak
 
 from tripletkit import _memory
 from tripletkit._errors import TripletkitError
-from tripletkit._memory import ENV_LIMIT, USABLE_SHARE, available_bytes, estimate_and_guard, format_bytes, scoring_bytes
+from tripletkit._memory import ENV_LIMIT, USABLE_SHARE, available_bytes, estimate_and_guard, format_bytes
 
 MB = 2**20
 GB = 2**30
@@ -124,60 +123,3 @@ def test_format_bytes():
     assert format_bytes(1536) == "1.5 KiB"
     assert format_bytes(3 * GB) == "3.0 GiB"
     assert format_bytes(5 * 2**40) == "5.0 TiB"
-
-
-# -- estimators: hand-computed sums of the documented terms -----------------------------------
-def test_scoring_bytes_hand_computed():
-    # n=1000, d=8, 100 rows per block, memory_mb=16, no genuine pairs, 10 identities, 2 workers.
-    # verification: float64 copy on the exact-cosine grid 64,000 + per worker (blocks
-    # 13*100*1000 = 1,300,000 + histogram 12*526,336) + histograms 7*8*526,336 + kept impostors
-    # 0.5 * 16 MiB = 8,388,608 -> the largest stage; plus the table 32,000
-    bins = 2**19 + 2**11
-    assert scoring_bytes(1000, 8, 100, memory_mb=16, identities=10, workers=2) == 32_000 + 64_000 \
-        + 2 * (1_300_000 + 12 * bins) + 7 * 8 * bins + 8_388_608
-    # genuine scores add 24 bytes each
-    assert scoring_bytes(1000, 8, 100, memory_mb=16, genuine_pairs=1000) - \
-        scoring_bytes(1000, 8, 100, memory_mb=16) == 24_000
-    # one worker fewer: one block buffer and one histogram less
-    assert scoring_bytes(1000, 8, 100, memory_mb=16, workers=2) - scoring_bytes(1000, 8, 100, memory_mb=16, workers=1) \
-        == 1_300_000 + 12 * bins
-
-
-def test_scoring_bytes_health_term_grows_with_min_n_d_squared():
-    # the effective dimension builds the smaller of the (d, d) scatter and the (n, n) Gram
-    # matrix: 12 rows of 100,000 dimensions need a 12 x 12 matrix, not 80 GB (d^2 * 8 bytes)
-    wide = scoring_bytes(12, 100_000, 0)
-    assert wide < 2**30
-    # hand-computed where health is the largest stage: n = d = 2,000, one row per block,
-    # memory_mb = 1, 2 workers -> table 2,000 * 2,000 * 4 = 16,000,000; health 16 * 2,000^2 (the
-    # int64 and float64 matrices) + 8 * 2,000 * 2,000 (a block of integer rows) = 96,000,000,
-    # above verification (float64 copy 32,000,000 + 2 * (13 * 2,000 + 6,316,032) + histograms
-    # 29,474,816 + 524,288 kept = 74,683,168) and retrieval
-    assert scoring_bytes(2000, 2000, 1, memory_mb=1, workers=2) == 16_000_000 + 96_000_000
-    with pytest.raises(TripletkitError, match="or use a lower-dimensional projection"):
-        estimate_and_guard("scoring 12 x 100,000", wide, suggestion="or use a lower-dimensional projection",
-                           available=wide // 2)
-
-
-def test_scoring_bytes_rejects_bad_sizes():
-    with pytest.raises(ValueError):
-        scoring_bytes(-1, 4, 0)
-    with pytest.raises(ValueError):
-        scoring_bytes(2.5, 4, 0)
-
-
-# -- estimators against what real runs allocate -----------------------------------------------
-# Tolerance: the estimate is a planning figure, not an accounting; within a factor of 2.5 of
-# the traced numpy allocations either way (our choice; measured ratios were 0.7 to 2.0).
-@pytest.mark.parametrize("n, d", [(4000, 64), (2000, 256)])
-def test_scoring_estimate_tracks_traced_allocations(rng, n, d):
-    from tripletkit.config import EvaluationConfig
-    from tripletkit.evaluate import score
-    from tripletkit.tables.embeddings import EmbeddingTable
-
-    ids, labels, X = grouped_rows(rng, n, d)
-    table = EmbeddingTable.from_arrays(ids, labels, X)
-    cfg = EvaluationConfig(memory_mb=16, bootstrap=0, clustering=False, plots=False)
-    scored = traced_peak(lambda: score(table, config=cfg, quiet=True))
-    est = scoring_bytes(n, d, 0, memory_mb=16, genuine_pairs=(n // 20) * 20 * 19 // 2, identities=n // 20)
-    assert scored / 2.5 <= est <= 2.5 * scored, (format_bytes(scored), format_bytes(est))

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["TripletkitError", "TripletkitWarning", "INTERRUPTED"]
+__all__ = ["TripletkitError", "TripletkitWarning", "Stopped", "INTERRUPTED"]
 
 #: What the command prints on Ctrl-C (exit code 130), whenever it arrives.
 INTERRUPTED = "interrupted: no output was written"
@@ -21,3 +21,8 @@ class TripletkitWarning(UserWarning):
 
     The result carries a null with a reason instead of a made-up number.
     """
+
+
+class Stopped(Exception):
+    """A task of a plan ended early because its run was stopped (another task failed, the caller
+    was interrupted or went away); tasks raise it when their ``stopped()`` says so."""

@@ -5,9 +5,10 @@ halfway through (no message, or a ``MemoryError`` traceback). :func:`estimate_an
 an estimate with the memory still available and raises :class:`~tripletkit._errors.TripletkitError`
 with one line that says what to change (a smaller block, the approximate index, a subset).
 
-The estimators count the large arrays the code allocates (matrices, indexes, search blocks,
-score buffers); they leave out what is small or hard to predict (Python objects, BLAS work
-buffers, allocator slack), so the guard only lets a run plan to use :data:`USABLE_SHARE` of
+Each job estimates its own bytes next to its plan (``mining.plan.mining_bytes``,
+``evaluate.scoring_bytes``): they count the large arrays the code allocates (matrices, indexes,
+search blocks, score buffers) and leave out what is small or hard to predict (Python objects, BLAS
+work buffers, allocator slack), so the guard only lets a run plan to use :data:`USABLE_SHARE` of
 what is available.
 
 Available memory is, in this order: the ``TRIPLETKIT_MEMORY_LIMIT_MB`` environment variable
@@ -24,8 +25,7 @@ from pathlib import Path
 
 from ._errors import TripletkitError
 
-__all__ = ["ENV_LIMIT", "USABLE_SHARE", "available_bytes", "estimate_and_guard", "format_bytes",
-           "scoring_bytes"]
+__all__ = ["ENV_LIMIT", "USABLE_SHARE", "available_bytes", "estimate_and_guard", "format_bytes"]
 
 #: Environment variable that sets the available memory in MB (overrides detection).
 ENV_LIMIT = "TRIPLETKIT_MEMORY_LIMIT_MB"
@@ -34,19 +34,6 @@ ENV_LIMIT = "TRIPLETKIT_MEMORY_LIMIT_MB"
 USABLE_SHARE = 0.8
 
 _MB = 2**20
-# Verification: histogram counts over 2**19 + 2**11 bins; about seven int64 arrays of them are
-# alive at once (measured with tracemalloc on small tables, where they dominate).
-_HISTOGRAM_BYTES = 7 * 8 * (2**19 + 2**11)
-# Each verification worker thread also has its own int64 histogram with an int32 scratch one
-# (its block buffers: tripletkit.metrics.verification._BYTES_PER_BLOCK_SCORE per score).
-_WORKER_HISTOGRAM_BYTES = 12 * (2**19 + 2**11)
-# Verification keeps the highest impostor scores in at most this share of its memory budget
-# (tripletkit.metrics.verification._KEEP_SHARE).
-_KEEP_SHARE = 0.5
-# One genuine pair score kept for the exact second pass: float64 score, int64 identity, group code.
-_BYTES_PER_GENUINE = 24
-# Rows (or columns) of integer coordinates per block of the effective dimension (2**(52 - 2*20)).
-_HEALTH_BLOCK = 4096
 
 
 # ---------------------------------------------------------------------------------------------
@@ -205,63 +192,3 @@ def estimate_and_guard(what, bytes_needed, *, suggestion, available=None):
             f"(a run may plan on {USABLE_SHARE:.0%} of it); {suggestion}"
         )
     return avail
-
-
-# ---------------------------------------------------------------------------------------------
-# estimators (the large arrays of each job; keep them in step with the code they describe)
-# ---------------------------------------------------------------------------------------------
-def _check_sizes(**values):
-    for name, value in values.items():
-        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise ValueError(f"{name} must be a whole number >= 0, got {value!r}")
-
-
-def scoring_bytes(n, d, block_rows, *, memory_mb=512, genuine_pairs=0, identities=0, workers=None):
-    """Estimated peak bytes of :func:`tripletkit.evaluate.score` on all pairs of an ``n x d`` table.
-
-    Parameters
-    ----------
-    n, d : int
-        Rows and dimension of the held-out table.
-    block_rows : int
-        Rows per scoring block (0: sized from ``memory_mb`` as the verification does).
-    memory_mb : int
-        The evaluation's memory budget (``memory_mb``).
-    genuine_pairs : int
-        Genuine pairs of the table (sum over identities of s (s - 1) / 2); their scores are kept
-        for the exact operating points.
-    identities : int
-        Identities (the k of the clustering's k-means).
-    workers : int, optional
-        Verification worker threads (default: as the verification chooses them, one per CPU
-        within the budget; see :func:`tripletkit.metrics.verification.default_workers`).
-
-    Returns
-    -------
-    int
-        The table and the verification's sorted copy on the exact-cosine grid (float64), the
-        block buffers (13 bytes per score of a block and worker), the score histograms, the kept genuine
-        scores and highest impostor scores, the retrieval index and its result block, the
-        k-means copy and centroids, and the effective dimension's int64 and float64 (m, m) matrices,
-        m = min(n, d), with a block of integer rows (health).
-    """
-    _check_sizes(n=n, d=d, block_rows=block_rows, memory_mb=memory_mb, genuine_pairs=genuine_pairs,
-                 identities=identities)
-    budget = memory_mb * _MB
-    from .metrics.allpairs import BYTES_PER_BLOCK_SCORE as _BYTES_PER_BLOCK_SCORE, block_size, workers_for
-
-    nn = max(n, 1)
-    b = block_size(nn, block_rows or None, budget)  # the verification's own rules
-    workers = workers_for(nn, b, budget) if workers is None else max(1, min(int(workers), -(-nn // b)))
-    vectors = n * d * 4
-    # the sorted copy snapped to the exact-cosine grid is float64: twice the table
-    verification = (2 * vectors + workers * (_BYTES_PER_BLOCK_SCORE * b * n + _WORKER_HISTOGRAM_BYTES)
-                    + _HISTOGRAM_BYTES + genuine_pairs * _BYTES_PER_GENUINE + int(_KEEP_SHARE * budget))
-    # retrieval and k-means work on a float64 copy on the exact-cosine grid (twice the table)
-    retrieval = 2 * vectors + budget
-    clustering = 2 * vectors + identities * d * 12 + n * 16
-    m = min(n, d)
-    # the exact int64 matrix and its float64 centred copy, and one block of integer rows
-    health = 16 * m * m + 8 * m * min(_HEALTH_BLOCK, max(n, d))
-    # the stages run one after another: the table stays, the largest stage sets the peak
-    return int(vectors + max(verification, retrieval, clustering, health))

@@ -23,7 +23,7 @@ import warnings
 
 from . import __version__
 from ._errors import INTERRUPTED, TripletkitError
-from ._io import check_not_input, jsonable
+from ._io import jsonable
 from .config import ComputeConfig, EvaluationConfig, MiningConfig, unwrap_optional
 
 __all__ = ["main", "build_parser"]
@@ -202,37 +202,18 @@ def _run(args):
                                    soft=args.soft, table_options=_table_kwargs(args))
     if args.command == "mine":
         from .mining import mine
-        from .tables.embeddings import EmbeddingTable, require_pairs
-        from .tables.triplets import duplicates_path
 
-        cfg = _load_section(args, "mining", MiningConfig)
         compute = _compute(args)
-        kwargs = {}
-        if compute.scheduler is not None:
-            kwargs["compute"] = compute
-        check_not_input(args.out, [args.table])
-        if compute.scheduler is None:
-            check_not_input(duplicates_path(args.out), [args.table])
-        table = EmbeddingTable.read(args.table, **_table_kwargs(args))
-        require_pairs(table, "mining")
-        return mine(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
-                    table_options=_table_kwargs(args), **kwargs)
+        return mine(args.table, out=args.out, config=_load_section(args, "mining", MiningConfig), force=args.force,
+                    quiet=args.quiet, table_options=_table_kwargs(args), strict=True, config_file=args.config,
+                    compute=compute if compute.scheduler is not None else None)
     if args.command == "score":
         from .evaluate import score
-        from .tables.embeddings import EmbeddingTable, require_pairs
 
-        cfg = _load_section(args, "evaluation", EvaluationConfig)
         compute = _compute(args)
-        check_not_input(args.out, [args.table, cfg.pairs, args.config])
-        if compute.scheduler is not None:
-            return score(args.table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
-                         table_options=_table_kwargs(args), compute=compute)
-        table = EmbeddingTable.read(args.table, **_table_kwargs(args))
-        if cfg.pairs is None:
-            # all pairs: with no genuine or no impostor pair nothing could be computed but nulls
-            require_pairs(table, "scoring")
-        return score(table, out=args.out, config=cfg, force=args.force, quiet=args.quiet,
-                     table_options=_table_kwargs(args))
+        return score(args.table, out=args.out, config=_load_section(args, "evaluation", EvaluationConfig),
+                     force=args.force, quiet=args.quiet, table_options=_table_kwargs(args), strict=True,
+                     config_file=args.config, compute=compute if compute.scheduler is not None else None)
     if args.command == "sweep":
         from .sweeps import sweep
 

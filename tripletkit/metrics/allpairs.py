@@ -23,6 +23,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from .._errors import Stopped
+
 from .._exact import snap
 from .bins import EMBEDDING_SCALE, NBINS, NOT_A_PAIR, add_histogram, keys_of
 from .refine import Refiner, keep_per_group
@@ -165,7 +167,7 @@ class Blocks:
 
 # ---------------------------------------------------------------------------------------------
 # tasks: task(shared, item, stopped), item = the first rows of a group's blocks. A task that sees
-# stopped() returns None at once: its engine is raising the error that stopped the run.
+# stopped() raises Stopped at once: its engine is raising the error that stopped the run.
 # ---------------------------------------------------------------------------------------------
 def count_task(shared, starts, stopped):
     """First pass over some blocks.
@@ -182,7 +184,7 @@ def count_task(shared, starts, stopped):
     genuine = []
     for r0 in starts:
         if stopped():
-            return None
+            raise Stopped("the run was stopped")
         scaled = view.product(r0)
         add_histogram(keys_of(scaled, view.key_buffer()[: scaled.size].reshape(scaled.shape)), hist, block_hist)
         v, i, g = view.genuine(r0, scaled)
@@ -211,7 +213,7 @@ def list_task(shared, starts, stopped):
     refiner = Refiner(selection)
     for r0 in starts:
         if stopped():
-            return None
+            raise Stopped("the run was stopped")
         refiner.visit(view, r0, view.product(r0), chunk, use_table)
     return refiner.export()
 
@@ -223,7 +225,7 @@ def kept_task(shared, runs, stopped):
     refiner = Refiner(selection)
     for run in runs:
         if stopped():
-            return None
+            raise Stopped("the run was stopped")
         refiner.process(blocks, *run)
     return refiner.export()
 

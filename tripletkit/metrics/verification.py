@@ -19,6 +19,7 @@ import numpy as np
 
 from .._errors import TripletkitError
 from .._exact import pair_cosines, snap
+from .._threads import InThreads
 from .._validate import (
     as_codes, as_embeddings, as_positions, as_scores, check_bootstrap, check_confidence, check_fmr_targets,
     check_same_length, check_unit, whole_number,
@@ -319,10 +320,8 @@ def _block_plan(rows, memory_budget, block_rows, workers, engine):
     block = block_size(rows.n, block_rows, memory_budget)
     if workers is None:
         workers = getattr(engine, "threads", None) or workers_for(rows.n, block, memory_budget)
-    if engine is None:
-        from ..engines.local import LocalEngine  # the default of a direct caller; the verbs choose theirs
-
-        engine = LocalEngine(threads=workers)
+    if engine is None:  # a direct caller's default; the verbs choose their engine
+        engine = InThreads(threads=workers)
     return BlockPlan(Blocks(rows.embeddings, rows.codes, rows.group_codes, block), engine, workers, memory_budget)
 
 

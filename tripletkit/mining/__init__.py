@@ -121,13 +121,14 @@ def resolve_config(config, options):
 
 
 def mine(source, out=None, *, config=None, force=False, quiet=False, return_triplets=False, compute=None,
-         table_options=None, dense=None, **options):
+         table_options=None, dense=None, strict=False, config_file=None, **options):
     """Mine easy, semi-hard and hard triplets from an embedding table.
 
     Parameters
     ----------
-    source : str, Path, EmbeddingTable or (ids, labels, embeddings) tuple
-        The embeddings of the training set (see :func:`tripletkit.tables.embeddings.as_table`).
+    source : str, Path, EmbeddingTable, table object or (ids, labels, embeddings) tuple
+        The embeddings of the training set: anything :func:`tripletkit.tables.embeddings.as_table`
+        accepts (a DataFrame, an Arrow table, ...).
     out : str or Path, optional
         Parquet path of the triplet table. The suspect-duplicate report is written beside it as
         ``<stem>.duplicates.parquet`` (columns id_a, id_b, label_a, label_b, cosine). Both are
@@ -142,7 +143,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         Also return the triplets as arrays (``summary.triplets``).
     compute : ComputeConfig, optional
         With ``compute.scheduler`` set, run on a Dask cluster
-        (:func:`tripletkit.engines.dask.mine_on_cluster`): ``source`` must be a Parquet path the
+        (:func:`tripletkit.engines.dask_mining.mine_on_cluster`): ``source`` must be a Parquet path the
         workers can read, and ``out`` becomes a folder of part files; same triplets.
     table_options : dict, optional
         Column names and ``drop_invalid`` for reading a path ``source`` (see
@@ -152,6 +153,11 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
         sampled anchors' search bands hold at least :data:`~tripletkit.mining.plan.DENSE_SHARE`
         of the table, True always, False never (the index search). Both paths write the same
         bytes; the knob is for tests and benchmarks. Not available with a scheduler.
+    strict : bool, default False
+        Refuse (:class:`TripletkitError`) a table with no genuine or no impostor pair instead of
+        warning and mining nothing (the command is strict).
+    config_file : str or Path, optional
+        The TOML file ``config`` was read from, never to be replaced by ``out``.
     **options
         Override fields of ``config`` (validated like config keys), e.g. ``margin=0.3``,
         ``regimes=("hard",)``, ``select="hardest"``.
@@ -183,7 +189,7 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     from .._errors import TripletkitError
     from .._io import atomic_paths
     from .._validate import check_flag
-    from ..tables.embeddings import as_table
+    from ..tables.embeddings import as_table, require_pairs
 
     t0 = time.perf_counter()
     cfg = resolve_config(config, options)
@@ -192,12 +198,15 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     if compute is not None and compute.scheduler is not None:
         if dense is not None:
             raise TripletkitError("dense applies to mining in one process; leave it unset with a scheduler")
-        from ..engines.dask import mine_on_cluster  # its output is a folder, checked there
+        from ..engines.dask_mining import mine_on_cluster  # its output is a folder, checked there
 
         return mine_on_cluster(source, out, config=cfg, compute=compute, force=force, quiet=quiet,
-                               return_triplets=return_triplets, table_options=table_options)
-    outputs = _check_outputs(source, out, force)
+                               return_triplets=return_triplets, table_options=table_options, strict=strict,
+                               config_file=config_file)
+    outputs = _check_outputs(source, out, force, config_file)
     table = as_table(source, **(table_options or {}))
+    if strict:
+        require_pairs(table, "mining")
     _guard_memory(table, cfg, return_triplets)
     from . import run
 
@@ -212,11 +221,10 @@ def mine(source, out=None, *, config=None, force=False, quiet=False, return_trip
     return summary
 
 
-def _check_outputs(source, out, force):
+def _check_outputs(source, out, force, config_file=None):
     """The triplet table and duplicate report paths of ``out`` ([] for None), refused when they
-    exist (without ``force``) or would overwrite the input."""
-    from .._errors import TripletkitError
-    from .._io import check_output
+    exist (without ``force``) or would overwrite an input."""
+    from .._io import check_not_input, check_output
     from ..tables.embeddings import source_path
     from ..tables.triplets import duplicates_path
 
@@ -226,9 +234,8 @@ def _check_outputs(source, out, force):
     dup_out = duplicates_path(out)
     check_output(out, force=force)
     check_output(dup_out, force=force)
-    src = source_path(source)
-    if src is not None and Path(src).resolve() in (out.resolve(), dup_out.resolve()):
-        raise TripletkitError(f"output {str(out)!r} would overwrite the input table; choose another --out")
+    for path in (out, dup_out):
+        check_not_input(path, [source_path(source), config_file])
     return [out, dup_out]
 
 
