@@ -715,7 +715,7 @@ def test_os_error_is_one_line(tmp_path, capsys, monkeypatch):
 
 
 def test_internal_error_is_one_line_exit_1_and_debug_shows_it(tmp_path, capsys, monkeypatch):
-    import tripletkit.tables.embeddings as table_module
+    import tripletkit.tables.check as table_module
 
     monkeypatch.setattr(table_module, "check", lambda *a, **k: [][1])
     src = good(tmp_path)

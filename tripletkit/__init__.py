@@ -19,8 +19,8 @@ __version__ = "0.1.0"
 
 #: The module of each lazily imported public name.
 _LAZY = {
-    "check": "tables.embeddings", "EmbeddingTable": "tables.embeddings", "read_table": "tables.embeddings",
-    "write_table": "tables.embeddings", "loss": "losses", "triplet_loss": "losses", "triplet_loss_grad": "losses",
+    "check": "tables.check", "EmbeddingTable": "tables.embeddings", "read_table": "tables.embeddings",
+    "write_table": "tables.embeddings", "loss": "triplet_scores", "triplet_loss": "losses", "triplet_loss_grad": "losses",
     "batch_all_loss": "losses", "batch_hard_loss": "losses", "mine": "mining", "REGIMES": "mining",
     "score": "evaluate", "sweep": "sweeps", "demo": "scenario", "fit_head": "head", "ProjectionHead": "head",
     "load_config": "config",

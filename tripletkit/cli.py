@@ -192,11 +192,11 @@ def _compute(args):
 def _run(args):
     """Dispatch one parsed command; return the object to print."""
     if args.command == "check":
-        from .tables.embeddings import check
+        from .tables.check import check
 
         return check(args.table, **_table_kwargs(args))
     if args.command == "loss":
-        from .losses import loss
+        from .triplet_scores import loss
 
         return loss(args.triplets, args.table, margin=args.margin, distance=args.distance,
                                    soft=args.soft, table_options=_table_kwargs(args))

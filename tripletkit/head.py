@@ -34,7 +34,8 @@ from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path, say
 from ._validate import as_embeddings, check_margin, row_norms, whole_number
 from .config import HeadConfig, MiningConfig
-from .losses import REGIMES, triplet_loss, triplet_loss_grad
+from .losses import triplet_loss, triplet_loss_grad
+from .mining.regimes import REGIMES
 from .optimizers import make_optimizer
 
 __all__ = ["ProjectionHead", "fit_head", "HeadDiverged", "describe_epoch"]

@@ -37,28 +37,28 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 
 from ._errors import TripletkitError
-from ._validate import as_codes, as_embeddings, check_same_length, margin_number, row_norms
-from .mining.regimes import REGIMES, classify
+from ._validate import (as_codes, as_embeddings, check_choice, check_distance, check_flag, check_same_length,
+                        margin_number, row_norms)
+from ._validate import DISTANCES as _DISTANCES
 
 __all__ = [
     "DISTANCES",
+    "rowwise_distance",
+    "loss_terms",
     "BatchLoss",
     "pair_distance",
     "triplet_loss",
     "triplet_loss_grad",
     "batch_all_loss",
     "batch_hard_loss",
-    "score_triplets",
-    "loss",
 ]
 
-#: Accepted values of every ``distance`` argument.
-DISTANCES = ("squared", "euclidean")
+#: Accepted values of every ``distance`` argument (tripletkit._validate.DISTANCES).
+DISTANCES = _DISTANCES
 _REDUCTIONS = ("mean", "sum", "none")
 _AVERAGES = ("all", "active")
 
@@ -67,27 +67,6 @@ _BLOCK_BYTES = 32 * 2**20
 
 
 # -- validation of scalar options (array inputs go through _validate) -------------------------
-def _check_distance(distance):
-    if not isinstance(distance, str) or distance not in DISTANCES:
-        raise TripletkitError(
-            f"distance must be 'squared' or 'euclidean', got {distance!r}; pick one of those two"
-        )
-    return distance
-
-
-def _check_flag(value, name):
-    if not isinstance(value, (bool, np.bool_)):
-        raise TripletkitError(f"{name} must be True or False, got {value!r}")
-    return bool(value)
-
-
-def _check_choice(value, name, choices):
-    if not isinstance(value, str) or value not in choices:
-        allowed = ", ".join(repr(c) for c in choices)
-        raise TripletkitError(f"{name} must be one of {allowed}, got {value!r}")
-    return value
-
-
 def _check_block(block_size, name="block_size"):
     if block_size is None:
         return None
@@ -126,7 +105,7 @@ def _back_through_normalise(g_u, u, norms):
     return (g_u - u * radial[:, None]) / norms[:, None]
 
 
-def _rowwise(ua, ub, distance):
+def rowwise_distance(ua, ub, distance):
     """Row-wise distances and the difference vectors ``ua - ub`` (kept for the gradient)."""
     diff = ua - ub
     # The difference form is accurate for nearby points, where 2 - 2 cos would cancel.
@@ -157,7 +136,7 @@ def _pairwise(u, distance):
     return sq if distance == "squared" else np.sqrt(sq)
 
 
-def _terms(d_ap, d_an, margin, soft):
+def loss_terms(d_ap, d_an, margin, soft):
     """Per-triplet loss, d(loss)/d(d_ap) (= -d(loss)/d(d_an)) and the active mask."""
     # (d_ap + margin) - d_an is zero or negative exactly when d_an >= d_ap + margin, so in floating
     # point the zero-loss set of the hinge coincides with the 'easy' regime of regimes.classify.
@@ -209,12 +188,12 @@ def pair_distance(a, b, distance="squared"):
     >>> pair_distance([[1.0, 0.0]], [[0.0, 3.0]]).tolist()
     [2.0]
     """
-    distance = _check_distance(distance)
+    distance = check_distance(distance)
     ua, _ = _raw_rows(a, "a")
     ub, _ = _raw_rows(b, "b")
     check_same_length(a=ua, b=ub)
     _check_same_dim(a=ua, b=ub)
-    return _rowwise(ua, ub, distance)[0]
+    return rowwise_distance(ua, ub, distance)[0]
 
 
 def _triplet_inputs(anchor, positive, negative):
@@ -251,13 +230,13 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
     .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
        Re-Identification", arXiv:1703.07737, 2017.
     """
-    distance = _check_distance(distance)
+    distance = check_distance(distance)
     margin = margin_number(margin)
-    soft = _check_flag(soft, "soft")
+    soft = check_flag(soft, "soft")
     (ua, _), (up, _), (un, _) = _triplet_inputs(anchor, positive, negative)
-    d_ap = _rowwise(ua, up, distance)[0]
-    d_an = _rowwise(ua, un, distance)[0]
-    return _terms(d_ap, d_an, margin, soft)[0]
+    d_ap = rowwise_distance(ua, up, distance)[0]
+    d_an = rowwise_distance(ua, un, distance)[0]
+    return loss_terms(d_ap, d_an, margin, soft)[0]
 
 
 def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared", soft=False,
@@ -288,15 +267,15 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
     Subgradients: at a hinge kink (d_ap - d_an + margin exactly 0) the loss is 0 and its gradient is
     taken as 0; at a zero Euclidean distance the gradient of that distance is taken as 0.
     """
-    distance = _check_distance(distance)
+    distance = check_distance(distance)
     margin = margin_number(margin)
-    soft = _check_flag(soft, "soft")
-    reduction = _check_choice(reduction, "reduction", _REDUCTIONS)
+    soft = check_flag(soft, "soft")
+    reduction = check_choice(reduction, "reduction", _REDUCTIONS)
     (ua, na), (up, np_), (un, nn) = _triplet_inputs(anchor, positive, negative)
     n = ua.shape[0]
-    d_ap, diff_ap = _rowwise(ua, up, distance)
-    d_an, diff_an = _rowwise(ua, un, distance)
-    loss, slope, _ = _terms(d_ap, d_an, margin, soft)
+    d_ap, diff_ap = rowwise_distance(ua, up, distance)
+    d_an, diff_an = rowwise_distance(ua, un, distance)
+    loss, slope, _ = loss_terms(d_ap, d_an, margin, soft)
     if reduction == "mean":
         if n == 0:
             _warn("triplet_loss_grad got zero triplets; the mean loss is undefined (NaN)")
@@ -416,10 +395,10 @@ def batch_all_loss(X, labels, margin=0.2, distance="squared", soft=False, *, ave
     .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
        Re-Identification", arXiv:1703.07737, 2017.
     """
-    distance = _check_distance(distance)
+    distance = check_distance(distance)
     margin = margin_number(margin)
-    soft = _check_flag(soft, "soft")
-    average = _check_choice(average, "average", _AVERAGES)
+    soft = check_flag(soft, "soft")
+    average = check_choice(average, "average", _AVERAGES)
     block_size = _check_block(block_size)
     u, norms, pos, neg = _batch_inputs(X, labels)
     n = u.shape[0]
@@ -437,7 +416,7 @@ def batch_all_loss(X, labels, margin=0.2, distance="squared", soft=False, *, ave
         a = anchors[start:start + step]
         p = positives[start:start + step]
         mask = neg[a]  # (b, n): the negatives of each anchor
-        loss, slope, act = _terms(dist[a, p][:, None], dist[a], margin, soft)
+        loss, slope, act = loss_terms(dist[a, p][:, None], dist[a], margin, soft)
         act &= mask
         loss = np.where(mask, loss, 0.0)
         total += float(loss.sum())
@@ -490,9 +469,9 @@ def batch_hard_loss(X, labels, margin=0.2, distance="squared", soft=False):
     .. [2] A. Hermans, L. Beyer, B. Leibe, "In Defense of the Triplet Loss for Person
        Re-Identification", arXiv:1703.07737, 2017.
     """
-    distance = _check_distance(distance)
+    distance = check_distance(distance)
     margin = margin_number(margin)
-    soft = _check_flag(soft, "soft")
+    soft = check_flag(soft, "soft")
     u, norms, pos, neg = _batch_inputs(X, labels)
     n = u.shape[0]
     valid = pos.any(axis=1) & neg.any(axis=1)
@@ -502,7 +481,7 @@ def batch_hard_loss(X, labels, margin=0.2, distance="squared", soft=False):
     dist = _pairwise(u, distance)
     hardest_pos = np.argmax(np.where(pos, dist, -np.inf), axis=1)[anchors]
     hardest_neg = np.argmin(np.where(neg, dist, np.inf), axis=1)[anchors]
-    loss, slope, act = _terms(dist[anchors, hardest_pos], dist[anchors, hardest_neg], margin, soft)
+    loss, slope, act = loss_terms(dist[anchors, hardest_pos], dist[anchors, hardest_neg], margin, soft)
     count = anchors.shape[0]
     weights = np.zeros((n, n))
     # Each anchor appears once, so its (anchor, p*) and (anchor, n*) cells are distinct.
@@ -514,134 +493,3 @@ def batch_hard_loss(X, labels, margin=0.2, distance="squared", soft=False):
     return BatchLoss(loss=loss_all, grad=grad, triplets=int(count), active=active,
                      active_fraction=active / count, loss_all=loss_all,
                      loss_active=float(loss[act].sum() / active) if active else 0.0)
-
-
-# -- public: scoring a triplet table against an embedding table ------------------------------
-def _py(value):
-    """A numpy scalar as the plain Python value (for messages)."""
-    return value.item() if isinstance(value, np.generic) else value
-
-
-def _as_id_column(ids, name):
-    arr = np.asarray(ids)
-    if arr.ndim != 1:
-        raise TripletkitError(f"{name} must be a 1-D column of ids, got shape {arr.shape}")
-    return arr
-
-
-def _label_check(table, rows_a, rows_b, same, a_ids, b_ids, role):
-    la, lb = table.labels[rows_a], table.labels[rows_b]
-    bad = (la != lb) if same else (la == lb)
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        rule = "must share the anchor's label" if same else "must have a label other than the anchor's"
-        raise TripletkitError(
-            f"{int(bad.sum())} of {bad.shape[0]} triplets have a wrong {role} (first: row {i}, anchor "
-            f"{_py(a_ids[i])!r} label {_py(table.label_values[la[i]])!r}, {role} {_py(b_ids[i])!r} "
-            f"label {_py(table.label_values[lb[i]])!r}); a {role} {rule}"
-        )
-
-
-def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, distance="squared",
-                   soft=False):
-    """Score a triplet table against an embedding table: mean loss, active fraction, regimes.
-
-    Parameters
-    ----------
-    table : tripletkit.table.EmbeddingTable
-        Supplies ``positions(ids)``, integer ``labels``, ``label_values`` and unit ``embeddings``.
-    anchor_ids, positive_ids, negative_ids : array-like of shape (t,)
-        Ids of ``table``; row i forms triplet i.
-    margin, distance, soft
-        As in :func:`triplet_loss`.
-
-    Returns
-    -------
-    dict
-        ``triplets`` (int), ``mean_loss`` (float or None), ``active_fraction`` (float or None) and
-        ``regimes`` (``{"easy": int, "semi-hard": int, "hard": int}``). With zero triplets the two
-        means are None and a RuntimeWarning says why.
-
-    Notes
-    -----
-    Distances are recomputed in float64 from the table's rows (re-normalised in float64), in blocks
-    of triplets, so memory is O(block * d) beyond the table itself. The numbers equal
-    :func:`triplet_loss` on the same vectors.
-    """
-    distance = _check_distance(distance)
-    margin = margin_number(margin)
-    soft = _check_flag(soft, "soft")
-    a_ids = _as_id_column(anchor_ids, "anchor ids")
-    p_ids = _as_id_column(positive_ids, "positive ids")
-    n_ids = _as_id_column(negative_ids, "negative ids")
-    check_same_length(anchor=a_ids, positive=p_ids, negative=n_ids)
-    rows_a = table.positions(a_ids, what="anchor ids")
-    rows_p = table.positions(p_ids, what="positive ids")
-    rows_n = table.positions(n_ids, what="negative ids")
-    same_row = rows_a == rows_p
-    if same_row.any():
-        i = int(np.flatnonzero(same_row)[0])
-        raise TripletkitError(
-            f"{int(same_row.sum())} triplets use the same row as anchor and positive (first: row {i}, id "
-            f"{_py(a_ids[i])!r}); a positive must be another sample of the anchor's identity"
-        )
-    _label_check(table, rows_a, rows_p, True, a_ids, p_ids, "positive")
-    _label_check(table, rows_a, rows_n, False, a_ids, n_ids, "negative")
-    t = rows_a.shape[0]
-    counts = np.zeros(len(REGIMES), dtype=np.int64)
-    if t == 0:
-        _warn("score_triplets got zero triplets; mean_loss and active_fraction are undefined (None)")
-        return {"triplets": 0, "mean_loss": None, "active_fraction": None,
-                "regimes": dict(zip(REGIMES, counts.tolist()))}
-    emb = table.embeddings
-    step = max(1, _BLOCK_BYTES // (8 * 8 * emb.shape[1]))
-    total = 0.0
-    active = 0
-    for start in range(0, t, step):
-        blk = slice(start, start + step)
-        ua, up, un = (_unit64(emb[rows[blk]]) for rows in (rows_a, rows_p, rows_n))
-        d_ap = _rowwise(ua, up, distance)[0]
-        d_an = _rowwise(ua, un, distance)[0]
-        loss, _, act = _terms(d_ap, d_an, margin, soft)
-        total += float(loss.sum())
-        active += int(act.sum())
-        counts += np.bincount(classify(d_ap, d_an, margin), minlength=len(REGIMES))
-    return {"triplets": int(t), "mean_loss": total / t, "active_fraction": active / t,
-            "regimes": dict(zip(REGIMES, counts.tolist()))}
-
-
-def _unit64(rows):
-    x = rows.astype(np.float64)
-    return x / np.sqrt(np.einsum("ij,ij->i", x, x))[:, None]
-
-
-# -- public: the `loss` verb ------------------------------------------------------------------
-def loss(triplets, table, *, margin=0.2, distance="squared", soft=False, table_options=None):
-    """Mean loss, active fraction and regime counts of a triplet table on an embedding table.
-
-    Parameters
-    ----------
-    triplets : str, Path or dict
-        A triplet table path, or a dict with ``anchor``, ``positive``, ``negative`` id arrays.
-    table : str, Path, EmbeddingTable or (ids, labels, embeddings)
-        The embeddings the ids refer to.
-    margin, distance, soft
-        As in :func:`triplet_loss`.
-
-    Returns
-    -------
-    dict
-        Keys ``triplets``, ``mean_loss``, ``active_fraction``, ``regimes``.
-    """
-    from ._validate import MAX_DISTANCE, check_margin
-    from .tables.embeddings import as_table
-    from .tables.triplets import read_triplets
-
-    if not soft and distance in MAX_DISTANCE and isinstance(margin, (int, float)):
-        check_margin(margin, distance, "margin")
-    trip = read_triplets(triplets) if isinstance(triplets, (str, Path)) else triplets
-    emb = as_table(table, **(table_options or {}))
-    if len(trip["anchor"]) == 0:
-        raise TripletkitError("the triplet table has no rows; there is nothing to score")
-    return score_triplets(emb, np.asarray(trip["anchor"]), np.asarray(trip["positive"]),
-                          np.asarray(trip["negative"]), margin=margin, distance=distance, soft=soft)

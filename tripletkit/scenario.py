@@ -406,9 +406,9 @@ def demo(out="tripletkit-demo", *, force=False, quiet=False, sweep=True):
     """
     from .config import EvaluationConfig, MiningConfig
     from .evaluate import score
-    from .losses import loss
+    from .triplet_scores import loss
     from .mining import mine
-    from .tables.embeddings import check
+    from .tables.check import check
 
     out = Path(out)
     summary = {}

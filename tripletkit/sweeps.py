@@ -25,7 +25,7 @@ import numpy as np
 from ._errors import TripletkitError, TripletkitWarning
 from ._io import atomic_path, check_not_input, check_output, jsonable, say
 from .config import load_config
-from .losses import REGIMES
+from .mining.regimes import REGIMES
 from .metrics import paired
 from .report import CAUTION, write_sweep_report
 from .report.format import compact, duration, number, percent

@@ -47,7 +47,7 @@ def test_output_table_and_metadata(seed, tmp_path):
                                 "singletons_skipped", "suspect_duplicates", "index", "recall", "seconds", "out",
                                 "duplicates_out"}
     # the package's triplet reader and loss agree with what was written
-    from tripletkit.losses import loss
+    from tripletkit.triplet_scores import loss
     from tripletkit.tables.triplets import read_triplets
     ids = read_triplets(out)
     assert np.array_equal(ids["positive"], tr["positive_id"])

@@ -10,7 +10,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from tripletkit import TripletkitError
-from tripletkit.tables.embeddings import EmbeddingTable, as_table, check, to_arrow, write_table
+from tripletkit.tables.check import check
+from tripletkit.tables.embeddings import EmbeddingTable, as_table, to_arrow, write_table
 
 
 def _write(path, table):
