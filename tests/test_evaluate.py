@@ -352,7 +352,7 @@ def test_plots_off(tmp_path, table_path):
 
 def test_compute_without_scheduler_scores_in_this_process(table_path):
     # A ComputeConfig without a scheduler means this process, as by default; the Dask path is
-    # tested in tests/test_distributed.py.
+    # tested in tests/engines/test_dask.py.
     plain = score(table_path, config=FAST, quiet=True)
     same = score(table_path, config=FAST, quiet=True, compute=ComputeConfig())
     assert same["verification"]["auc"] == plain["verification"]["auc"] > 0.5

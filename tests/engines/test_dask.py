@@ -1,4 +1,4 @@
-"""Tests of tripletkit.engines.dask: mine and score on a 2-worker Dask LocalCluster.
+"""Tests of tripletkit.engines.dask and .dask_mining: mine and score on a 2-worker Dask LocalCluster.
 
 Every test compares the cluster run with the single-process run of the same input (the twin):
 the score report must be identical (timings and ``verification.passes`` aside) and the mined
@@ -30,7 +30,7 @@ from tripletkit.evaluate import score  # noqa: E402
 from tripletkit.mining import mine  # noqa: E402
 from tripletkit.tables.embeddings import EmbeddingTable, to_arrow  # noqa: E402
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 TRAIN = ROOT / "demo_data" / "train_embeddings.parquet"
 HELDOUT = ROOT / "demo_data" / "heldout_embeddings.parquet"
 TIMING = ("seconds", "stage_seconds")
