@@ -7,14 +7,15 @@ and wherever it applies the gradient, your framework's autograd and optimiser do
 
 Each epoch:
 
-1. embed the training photos with the current model;
-2. mine the triplets of this epoch from those embeddings, in memory
-   (``tripletkit.mining.mine((ids, labels, embeddings), return_triplets=True)``);
-3. train on the triplets in minibatches with the triplet loss and its gradient with respect to the
-   raw (pre-normalisation) embeddings (``tripletkit.losses.triplet_loss_grad``), here with Adam
-   written out in numpy;
-4. score the held-out seals, identities never trained on
-   (``tripletkit.evaluate.score((ids, labels, embeddings))``) and print the equal error rate.
+1. embed the training photos with the current model and dump them to Parquet
+   (``tripletkit.write_table``), as a training job dumps its embeddings;
+2. mine the triplets of this epoch from that dump (``tripletkit.mine(dump, out=...)``);
+3. stream the triplets in shuffled batches of row positions of the dump
+   (``tripletkit.iter_triplet_batches``): any framework gathers its own tensors from positions;
+   train with the triplet loss and its gradient with respect to the raw (pre-normalisation)
+   embeddings (``tripletkit.triplet_loss_grad``), here with Adam written out in numpy;
+4. score the held-out seals, identities never trained on (``tripletkit.score``), and print the
+   equal error rate.
 
 Run it from the repository (or anywhere, after ``pip install``)::
 
@@ -25,16 +26,15 @@ from __future__ import annotations
 
 import argparse
 import sys
+import tempfile
 import time
+from pathlib import Path
 
 import numpy as np
 
+from tripletkit import EmbeddingTable, iter_triplet_batches, mine, score, triplet_loss_grad, write_table
 from tripletkit.config import EvaluationConfig, MiningConfig
 from tripletkit.scenario import demo_paths
-from tripletkit.evaluate import score
-from tripletkit.losses import triplet_loss_grad
-from tripletkit.mining import mine
-from tripletkit.tables.embeddings import EmbeddingTable
 
 
 def parse_args(argv=None):
@@ -76,20 +76,18 @@ def heldout_eer(W, heldout):
     return report["verification"]["eer"]
 
 
-def train_epoch(W, opt, train, margin, batch, rng, seed):
-    """Mine on the current embeddings, then one pass of minibatch updates; returns (W, summary, mean loss)."""
+def train_epoch(W, opt, train, margin, batch, work, epoch, seed):
+    """Dump, mine, then one pass of minibatch updates; returns (W, mining summary, mean loss)."""
     X = train.embeddings.astype(np.float64)  # frozen inputs (unit rows)
-    emb = X @ W  # 1. the model's embeddings of the training photos
-    # 2. mine from the arrays (nothing is written); row positions come back in summary.triplets
-    summary = mine((train.ids, train.labels, emb), config=MiningConfig(margin=margin, seed=seed),
-                   return_triplets=True, quiet=True)
-    t = summary.triplets
-    order = rng.permutation(summary.n_triplets)
+    # 1. the model's embeddings of the training photos, dumped as a training job would
+    dump = write_table(Path(work) / f"epoch-{epoch}.parquet", train.ids, train.original_labels(), X @ W)
+    # 2. this epoch's triplets, mined from the dump
+    out = Path(work) / f"epoch-{epoch}-triplets.parquet"
+    summary = mine(dump, out, config=MiningConfig(margin=margin, seed=seed), quiet=True)
     losses = []
-    for s in range(0, order.size, batch):
-        sel = order[s:s + batch]
-        a, p, n = t["anchor"][sel], t["positive"][sel], t["negative"][sel]
-        # 3. loss and its gradient with respect to the raw embeddings of each triplet's rows ...
+    # 3. shuffled batches of row positions in the dump's order (the order of X)
+    for a, p, n in iter_triplet_batches(out, dump, batch_size=batch, seed=seed):
+        # the loss and its gradient with respect to the raw embeddings of each triplet's rows ...
         loss, g_a, g_p, g_n = triplet_loss_grad(X[a] @ W, X[p] @ W, X[n] @ W, margin=margin)
         # ... back-propagated through the linear model: d(X W)/dW contributes X^T g
         grad = X[a].T @ g_a + X[p].T @ g_p + X[n].T @ g_n
@@ -110,14 +108,15 @@ def main(argv=None):
     print(f"train: {train.n} photos of {train.n_identities} seals; held out: {heldout.n} photos of "
           f"{heldout.n_identities} other seals; features {train.dim} -> embeddings {args.dim}")
     print(f"epoch 0: held-out EER {100 * heldout_eer(W, heldout):.2f} % (random projection)")
-    for epoch in range(1, args.epochs + 1):
-        W, summary, loss = train_epoch(W, opt, train, args.margin, args.batch, rng, seed=args.seed + epoch)
-        eer = heldout_eer(W, heldout)
-        # active_fraction is None when nothing was mined (a degenerate epoch warns instead of failing)
-        active = "n/a" if summary.active_fraction is None else f"{summary.active_fraction:.2f}"
-        print(f"epoch {epoch}: {summary.n_triplets} triplets mined ({summary.regimes['semi-hard']} semi-hard, "
-              f"{summary.regimes['hard']} hard, active {active}), mean loss "
-              f"{'n/a' if loss is None else f'{loss:.4f}'}, held-out EER {100 * eer:.2f} %")
+    with tempfile.TemporaryDirectory(prefix="tripletkit-train-") as work:  # this run's dumps and triplets
+        for epoch in range(1, args.epochs + 1):
+            W, summary, loss = train_epoch(W, opt, train, args.margin, args.batch, work, epoch, seed=args.seed + epoch)
+            eer = heldout_eer(W, heldout)
+            # active_fraction is None when nothing was mined (a degenerate epoch warns instead of failing)
+            active = "n/a" if summary.active_fraction is None else f"{summary.active_fraction:.2f}"
+            print(f"epoch {epoch}: {summary.n_triplets} triplets mined ({summary.regimes['semi-hard']} semi-hard, "
+                  f"{summary.regimes['hard']} hard, active {active}), mean loss "
+                  f"{'n/a' if loss is None else f'{loss:.4f}'}, held-out EER {100 * eer:.2f} %")
     print(f"done in {time.perf_counter() - t0:.1f} s")
     return 0
 

@@ -425,11 +425,42 @@ def test_triplet_loss_scale_invariant(rng):
     np.testing.assert_allclose(triplet_loss(5 * A, 0.01 * P, 300 * N), base, rtol=1e-12, atol=1e-15)
 
 
-def test_float32_input_is_accepted(rng):
+def test_float32_input_is_computed_in_float32_within_its_rounding(rng):
+    # float32 inputs stay float32 (a training loop's batches): the losses agree with the float64
+    # computation to float32 rounding, and the gradients come back in float32
     A, P, N = (rng.normal(size=(20, 4)).astype(np.float32) for _ in range(3))
     out = triplet_loss(A, P, N)
     assert out.dtype == np.float64
-    np.testing.assert_allclose(out, triplet_loss(*(v.astype(np.float64) for v in (A, P, N))), rtol=1e-15)
+    np.testing.assert_allclose(out, triplet_loss(*(v.astype(np.float64) for v in (A, P, N))), atol=2e-6)
+    value, ga, gp, gn = triplet_loss_grad(A, P, N)
+    ref = triplet_loss_grad(*(v.astype(np.float64) for v in (A, P, N)))
+    assert ga.dtype == gp.dtype == gn.dtype == np.float32
+    for got, want in zip((ga, gp, gn), ref[1:]):
+        np.testing.assert_allclose(got, want, atol=2e-6)
+    assert value == pytest.approx(ref[0], abs=2e-6)
+
+
+def test_unit_float32_rows_are_not_copied(rng):
+    # the working set of the per-triplet path is its chunks: on unit float32 rows the loss
+    # allocates far less than the inputs and the gradients little more than themselves
+    import tracemalloc
+
+    n, d = 60_000, 32
+    A, P, N = (rng.normal(size=(n, d)).astype(np.float32) for _ in range(3))
+    for x in (A, P, N):
+        x /= np.linalg.norm(x, axis=1, keepdims=True)
+    inputs = 3 * A.nbytes
+    tracemalloc.start()
+    try:
+        triplet_loss(A, P, N)
+        loss_peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.reset_peak()
+        triplet_loss_grad(A, P, N)
+        grad_peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert loss_peak < 0.1 * inputs, loss_peak  # the (n,) outputs and chunk temporaries
+    assert grad_peak < 1.5 * inputs, grad_peak  # the three gradients and chunk temporaries
 
 
 # -- error messages ----------------------------------------------------------------------------

@@ -23,7 +23,7 @@ _LAZY = {
     "write_table": "tables.embeddings", "loss": "triplet_scores", "triplet_loss": "losses", "triplet_loss_grad": "losses",
     "batch_all_loss": "losses", "batch_hard_loss": "losses", "mine": "mining", "REGIMES": "mining",
     "score": "evaluate", "sweep": "sweeps", "demo": "scenario", "fit_head": "head", "ProjectionHead": "head",
-    "load_config": "config",
+    "load_config": "config", "iter_triplet_batches": "tables.triplets",
 }
 
 __all__ = ["TripletkitError", "TripletkitWarning", "__version__", *_LAZY]

@@ -44,11 +44,13 @@ from ._errors import TripletkitError
 from ._validate import (as_codes, as_embeddings, check_choice, check_distance, check_flag, check_same_length,
                         margin_number, row_norms)
 from ._validate import DISTANCES as _DISTANCES
+from .mining.regimes import distance_from_cosine
 
 __all__ = [
     "DISTANCES",
     "rowwise_distance",
     "loss_terms",
+    "unit_triplet_terms",
     "BatchLoss",
     "pair_distance",
     "triplet_loss",
@@ -196,13 +198,74 @@ def pair_distance(a, b, distance="squared"):
     return rowwise_distance(ua, ub, distance)[0]
 
 
-def _triplet_inputs(anchor, positive, negative):
-    ua, na = _raw_rows(anchor, "anchor")
-    up, np_ = _raw_rows(positive, "positive")
-    un, nn = _raw_rows(negative, "negative")
-    check_same_length(anchor=ua, positive=up, negative=un)
-    _check_same_dim(anchor=ua, positive=up, negative=un)
-    return (ua, na), (up, np_), (un, nn)
+# -- the per-triplet path: chunks of rows, unit rows used as they are ---------------------------
+# Rows of one chunk of the per-triplet losses: the three input chunks (and the gradient's) stay
+# in the CPU cache between the passes over them.
+_CHUNK_BYTES = 1 << 19
+
+
+def _triplet_arrays(anchor, positive, negative):
+    """The three inputs as 2-D float arrays of one type: float32 stays float32 (no copy), anything
+    else becomes float64; shapes and dimensions checked."""
+    arrays = []
+    for name, x in (("anchor", anchor), ("positive", positive), ("negative", negative)):
+        arr = np.asarray(x)
+        if arr.ndim != 2 or arr.shape[1] < 1 or not np.issubdtype(arr.dtype, np.number) \
+                or np.issubdtype(arr.dtype, np.complexfloating):
+            as_embeddings(arr, name)  # raises the shared message
+        arrays.append(arr)
+    dtype = np.float32 if all(a.dtype == np.float32 for a in arrays) else np.float64
+    arrays = [np.ascontiguousarray(a, dtype=dtype) for a in arrays]
+    check_same_length(anchor=arrays[0], positive=arrays[1], negative=arrays[2])
+    _check_same_dim(anchor=arrays[0], positive=arrays[1], negative=arrays[2])
+    return arrays
+
+
+def _unit_tolerance(dtype, dim):
+    """|squared norm - 1| below which a row counts as unit and is used as it is (a few roundings)."""
+    return 8.0 * float(np.finfo(dtype).eps) * max(1.0, float(np.sqrt(dim)))
+
+
+def _unit_chunk(chunk, whole, name):
+    """``(unit rows, norms)`` of a chunk: rows already unit are used as they are (norms None).
+
+    Other rows are divided by their norms (computed without overflow); a chunk with NaN/Inf or
+    zero rows checks the whole input to raise the shared message with its row positions.
+    """
+    sq = np.einsum("ij,ij->i", chunk, chunk)
+    if np.all(np.abs(sq - 1.0) <= _unit_tolerance(chunk.dtype, chunk.shape[1])):
+        return chunk, None
+    norms = row_norms(chunk)
+    if not np.all(np.isfinite(norms) & (norms > 0)):
+        as_embeddings(whole, name, normalise=True, dtype=whole.dtype)  # raises with the positions
+    return (chunk / norms[:, None]).astype(chunk.dtype, copy=False), norms
+
+
+def _cosine_weights(cos, distance, dloss):
+    """``(distances, dloss/dcos)`` for float64 cosines of unit rows and ``dloss`` = dloss/ddistance."""
+    dist = distance_from_cosine(cos, distance)
+    if distance == "squared":
+        return dist, -2.0 * dloss
+    weight = np.zeros_like(dist)
+    # Subgradient 0 at a zero Euclidean distance, where sqrt is not differentiable.
+    np.divide(-dloss, dist, out=weight, where=dist > 0)
+    return dist, weight
+
+
+def _chunks(n, dim):
+    step = int(max(1, _CHUNK_BYTES // (8 * max(1, dim))))
+    return [(s, min(n, s + step)) for s in range(0, n, step)]
+
+
+def unit_triplet_terms(a, p, q, distance, margin, soft):
+    """``(cos_ap, cos_an, d_ap, d_an, loss, slope)`` of triplets of unit rows (float64 results; the
+    cosines in the rows' float type). Inputs are trusted: what the public functions build on."""
+    cos_ap = np.einsum("ij,ij->i", a, p).astype(np.float64)
+    cos_an = np.einsum("ij,ij->i", a, q).astype(np.float64)
+    d_ap = distance_from_cosine(cos_ap, distance)
+    d_an = distance_from_cosine(cos_an, distance)
+    loss, slope, _ = loss_terms(d_ap, d_an, margin, soft)
+    return cos_ap, cos_an, d_ap, d_an, loss, slope
 
 
 def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", soft=False):
@@ -211,7 +274,8 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
     Parameters
     ----------
     anchor, positive, negative : array-like of shape (n, d)
-        Raw embeddings; row i of the three arrays forms triplet i.
+        Raw embeddings; row i of the three arrays forms triplet i. float32 inputs are used as
+        they are (and rows that are already unit are not copied); other types work in float64.
     margin : float, default 0.2
         The margin alpha >= 0 of the hinge (0.2 is the value of [1]_). Ignored by the loss value
         when ``soft`` is true.
@@ -223,6 +287,8 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
     -------
     ndarray of float64, shape (n,)
         ``max(0, d_ap - d_an + margin)`` or ``log(1 + exp(d_ap - d_an))``; never negative.
+        Distances come from the cosines of the unit rows (``2 - 2 cos``), computed in the input's
+        float type: about 1e-7 absolute for float32 inputs.
 
     References
     ----------
@@ -233,10 +299,14 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
     distance = check_distance(distance)
     margin = margin_number(margin)
     soft = check_flag(soft, "soft")
-    (ua, _), (up, _), (un, _) = _triplet_inputs(anchor, positive, negative)
-    d_ap = rowwise_distance(ua, up, distance)[0]
-    d_an = rowwise_distance(ua, un, distance)[0]
-    return loss_terms(d_ap, d_an, margin, soft)[0]
+    anchor, positive, negative = _triplet_arrays(anchor, positive, negative)
+    out = np.empty(anchor.shape[0])
+    for s, e in _chunks(*anchor.shape):
+        a = _unit_chunk(anchor[s:e], anchor, "anchor")[0]
+        p = _unit_chunk(positive[s:e], positive, "positive")[0]
+        q = _unit_chunk(negative[s:e], negative, "negative")[0]
+        out[s:e] = unit_triplet_terms(a, p, q, distance, margin, soft)[4]
+    return out
 
 
 def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared", soft=False,
@@ -257,47 +327,67 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
     -------
     loss : float or ndarray of shape (n,)
         NaN (with a RuntimeWarning) for ``reduction="mean"`` on zero triplets.
-    grad_anchor, grad_positive, grad_negative : ndarray of float64, shape (n, d)
-        Row i is the gradient with respect to row i of the corresponding input. When the same raw
-        vector appears in several rows (e.g. rows gathered from one matrix), sum its rows, e.g.
-        with ``np.add.at``.
+    grad_anchor, grad_positive, grad_negative : ndarray of shape (n, d)
+        In the inputs' float type (float32 for float32 inputs, else float64). Row i is the
+        gradient with respect to row i of the corresponding input. When the same raw vector
+        appears in several rows (e.g. rows gathered from one matrix), sum its rows, e.g. with
+        ``np.add.at``.
 
     Notes
     -----
-    Subgradients: at a hinge kink (d_ap - d_an + margin exactly 0) the loss is 0 and its gradient is
-    taken as 0; at a zero Euclidean distance the gradient of that distance is taken as 0.
+    With unit rows u and cosines c = u_a . u_p, the loss depends on the rows through the cosines:
+    dL/du_a = w_ap u_p + w_an u_n, dL/du_p = w_ap u_a, dL/du_n = w_an u_a with w = dL/dc; the
+    Jacobian of x -> x / ||x||, (I - u u^T) / ||x||, then drops the radial part (u . dL/du is
+    known from the cosines). Subgradients: at a hinge kink (d_ap - d_an + margin exactly 0) the
+    loss is 0 and its gradient is taken as 0; at a zero Euclidean distance the gradient of that
+    distance is taken as 0. Memory: the three gradients (as large as the inputs) and chunks.
     """
     distance = check_distance(distance)
     margin = margin_number(margin)
     soft = check_flag(soft, "soft")
     reduction = check_choice(reduction, "reduction", _REDUCTIONS)
-    (ua, na), (up, np_), (un, nn) = _triplet_inputs(anchor, positive, negative)
-    n = ua.shape[0]
-    d_ap, diff_ap = rowwise_distance(ua, up, distance)
-    d_an, diff_an = rowwise_distance(ua, un, distance)
-    loss, slope, _ = loss_terms(d_ap, d_an, margin, soft)
+    anchor, positive, negative = _triplet_arrays(anchor, positive, negative)
+    n = anchor.shape[0]
+    scale = 1.0
+    if reduction == "mean" and n:
+        scale = 1.0 / n
+    losses = np.empty(n)
+    grads = [np.empty_like(anchor), np.empty_like(positive), np.empty_like(negative)]
+    for s, e in _chunks(*anchor.shape):
+        a, norm_a = _unit_chunk(anchor[s:e], anchor, "anchor")
+        p, norm_p = _unit_chunk(positive[s:e], positive, "positive")
+        q, norm_n = _unit_chunk(negative[s:e], negative, "negative")
+        cos_ap, cos_an, d_ap, d_an, loss, slope = unit_triplet_terms(a, p, q, distance, margin, soft)
+        losses[s:e] = loss
+        # d loss / d cos, per triplet (the hinge's and soft margin's slope is d loss / d d_ap)
+        w_ap = _cosine_weights(cos_ap, distance, slope * scale)[1]
+        w_an = _cosine_weights(cos_an, distance, -slope * scale)[1]
+        _project(grads[0][s:e], (w_ap, p), (w_an, q), a, w_ap * cos_ap + w_an * cos_an, norm_a)
+        _project(grads[1][s:e], (w_ap, a), None, p, w_ap * cos_ap, norm_p)
+        _project(grads[2][s:e], (w_an, a), None, q, w_an * cos_an, norm_n)
     if reduction == "mean":
         if n == 0:
             _warn("triplet_loss_grad got zero triplets; the mean loss is undefined (NaN)")
             value = float("nan")
         else:
-            value = float(loss.sum() / n)
-            slope = slope / n
+            value = float(losses.sum() / n)
     elif reduction == "sum":
-        value = float(loss.sum())
+        value = float(losses.sum())
     else:
-        value = loss
-    c_ap = (slope * _slope_factor(d_ap, distance))[:, None]
-    c_an = (slope * _slope_factor(d_an, distance))[:, None]
-    g_a = c_ap * diff_ap - c_an * diff_an
-    g_p = -c_ap * diff_ap
-    g_n = c_an * diff_an
-    return (
-        value,
-        _back_through_normalise(g_a, ua, na),
-        _back_through_normalise(g_p, up, np_),
-        _back_through_normalise(g_n, un, nn),
-    )
+        value = losses
+    return (value, *grads)
+
+
+def _project(out, first, second, unit, radial, norms):
+    """``out = (w1 v1 [+ w2 v2] - radial u) / ||x||``: a gradient on unit rows taken back through the
+    normalisation (its radial part dropped), in ``out``'s float type."""
+    dtype = out.dtype.type
+    np.multiply(first[1], first[0].astype(dtype)[:, None], out=out)
+    if second is not None:
+        out += second[1] * second[0].astype(dtype)[:, None]
+    out -= unit * radial.astype(dtype)[:, None]
+    if norms is not None:
+        out /= norms.astype(dtype)[:, None]
 
 
 # -- public: reductions over a labelled batch -------------------------------------------------

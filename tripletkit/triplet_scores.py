@@ -14,12 +14,12 @@ import numpy as np
 
 from ._errors import TripletkitError
 from ._validate import check_distance, check_flag, check_same_length, margin_number
-from .losses import loss_terms, rowwise_distance
+from .losses import unit_triplet_terms
 from .mining.regimes import REGIMES, classify
 
 __all__ = ["score_triplets", "loss"]
 
-# Bytes of float64 work per block of triplets (three gathered float64 row blocks).
+# Bytes of one block of gathered rows (three float32 row blocks).
 _BLOCK_BYTES = 32 * 2**20
 
 
@@ -70,9 +70,9 @@ def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, di
 
     Notes
     -----
-    Distances are recomputed in float64 from the table's rows (re-normalised in float64), in blocks
-    of triplets, so memory is O(block * d) beyond the table itself. The numbers equal
-    :func:`triplet_loss` on the same vectors.
+    Distances come from the cosines of the table's unit float32 rows, gathered in blocks of
+    triplets (memory O(block * d) beyond the table): the numbers equal :func:`triplet_loss` on
+    the same rows.
     """
     distance = check_distance(distance)
     margin = margin_number(margin)
@@ -100,26 +100,19 @@ def score_triplets(table, anchor_ids, positive_ids, negative_ids, margin=0.2, di
                       RuntimeWarning, stacklevel=2)
         return {"triplets": 0, "mean_loss": None, "active_fraction": None,
                 "regimes": dict(zip(REGIMES, counts.tolist()))}
-    emb = table.embeddings
-    step = max(1, _BLOCK_BYTES // (8 * 8 * emb.shape[1]))
+    emb = table.embeddings  # unit float32 rows: gathered and used as they are
+    step = max(1, _BLOCK_BYTES // (3 * 4 * emb.shape[1]))
     total = 0.0
     active = 0
     for start in range(0, t, step):
         blk = slice(start, start + step)
-        ua, up, un = (_unit64(emb[rows[blk]]) for rows in (rows_a, rows_p, rows_n))
-        d_ap = rowwise_distance(ua, up, distance)[0]
-        d_an = rowwise_distance(ua, un, distance)[0]
-        loss, _, act = loss_terms(d_ap, d_an, margin, soft)
+        a, p, q = (emb[rows[blk]] for rows in (rows_a, rows_p, rows_n))
+        _, _, d_ap, d_an, loss, _ = unit_triplet_terms(a, p, q, distance, margin, soft)
         total += float(loss.sum())
-        active += int(act.sum())
+        active += int(np.count_nonzero((d_ap + margin) - d_an > 0))
         counts += np.bincount(classify(d_ap, d_an, margin), minlength=len(REGIMES))
     return {"triplets": int(t), "mean_loss": total / t, "active_fraction": active / t,
             "regimes": dict(zip(REGIMES, counts.tolist()))}
-
-
-def _unit64(rows):
-    x = rows.astype(np.float64)
-    return x / np.sqrt(np.einsum("ij,ij->i", x, x))[:, None]
 
 
 # -- public: the `loss` verb ------------------------------------------------------------------

@@ -8,6 +8,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from tripletkit._errors import TripletkitError
 from tripletkit.mining.regimes import REGIMES
 from tripletkit.tables.embeddings import EmbeddingTable
 from tripletkit.tables.triplets import (DUPLICATE_COLUMNS, ROW_GROUP_ROWS, TRIPLET_COLUMNS, TripletWriter,
@@ -97,3 +98,39 @@ def test_duplicate_report(rng, tmp_path):
 def test_duplicates_path():
     assert duplicates_path("runs/epoch3.parquet") == Path("runs/epoch3.duplicates.parquet")
     assert duplicates_path("runs/epoch3") == Path("runs/epoch3.duplicates.parquet")
+
+
+# ---------------------------------------------------------------------------------------------
+# iter_triplet_batches: shuffled batches of row positions for a training loop
+# ---------------------------------------------------------------------------------------------
+def test_batches_hold_every_triplet_once_as_row_positions(tmp_path, rng):
+    from tripletkit import iter_triplet_batches, mine
+    from tripletkit.tables.embeddings import EmbeddingTable
+
+    labels = np.repeat(np.arange(10), 6)
+    table = EmbeddingTable.from_arrays(np.arange(60) * 7 + 3, labels, rng.standard_normal((60, 8)))
+    summary = mine(table, tmp_path / "t.parquet", quiet=True, regimes=("hard", "semi-hard"))
+    tr = pq.read_table(tmp_path / "t.parquet")
+    batches = list(iter_triplet_batches(tmp_path / "t.parquet", table, batch_size=7, seed=3))
+    assert [len(b[0]) for b in batches[:-1]] == [7] * (len(batches) - 1) and 1 <= len(batches[-1][0]) <= 7
+    got = np.stack([np.concatenate([b[i] for b in batches]) for i in range(3)], axis=1)
+    assert got.dtype == np.int64 and got.shape == (summary.n_triplets, 3)
+    # the positions name the triplets of the file: the same multiset of (anchor, positive, negative) ids
+    want = sorted(zip(*(tr.column(c).to_pylist() for c in ("anchor", "positive", "negative"))))
+    assert sorted(map(tuple, table.ids[got].tolist())) == want
+    # shuffled, and the same seed gives the same batches
+    assert not np.array_equal(got[:, 0], table.positions(tr.column("anchor").to_pylist()))
+    again = list(iter_triplet_batches(tmp_path / "t.parquet", table, batch_size=7, seed=3))
+    assert all(np.array_equal(x, y) for a, b in zip(batches, again) for x, y in zip(a, b))
+
+
+def test_batches_refuse_ids_missing_from_the_table_and_bad_sizes(tmp_path, rng):
+    from tripletkit import iter_triplet_batches
+    from tripletkit.tables.embeddings import EmbeddingTable
+
+    table = EmbeddingTable.from_arrays(np.arange(6), [0, 0, 1, 1, 2, 2], rng.standard_normal((6, 3)))
+    pq.write_table(pa.table({"anchor": [0, 2], "positive": [1, 3], "negative": [99, 4]}), tmp_path / "t.parquet")
+    with pytest.raises(TripletkitError, match=r"negative ids of triplet table .* are not in the embedding table"):
+        list(iter_triplet_batches(tmp_path / "t.parquet", table, batch_size=2))
+    with pytest.raises(TripletkitError, match=r"^batch_size must be a whole number >= 1, got 0"):
+        list(iter_triplet_batches(tmp_path / "t.parquet", table, batch_size=0))

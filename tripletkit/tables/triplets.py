@@ -15,11 +15,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .._errors import TripletkitError
-from .._io import PARQUET_WRITE, read_parquet, read_parquet_schema
+from .._io import PARQUET_WRITE, parquet_files, read_parquet, read_parquet_schema
 from ..mining.regimes import REGIMES
 from .columns import id_array, numpy_of
 
-__all__ = ["TRIPLET_COLUMNS", "DUPLICATE_COLUMNS", "ROW_GROUP_ROWS", "triplet_schema", "TripletWriter",
+__all__ = ["iter_triplet_batches", "TRIPLET_COLUMNS", "DUPLICATE_COLUMNS", "ROW_GROUP_ROWS", "triplet_schema", "TripletWriter",
            "write_duplicates", "duplicates_path", "read_triplets"]
 
 #: Columns of the triplet table, in order.
@@ -177,21 +177,29 @@ def write_duplicates(path, table, rows_a, rows_b, cosines, metadata):
 def read_triplets(path):
     """Read the ``anchor``, ``positive`` and ``negative`` id columns of a triplet table.
 
+    Parameters
+    ----------
+    path : str or Path
+        A triplet table, or the folder of part files a cluster run writes (read in order).
+
     Returns
     -------
     dict of str -> ndarray
         One array of ids per column.
     """
     p = Path(path)
-    if not p.is_file():
+    if not p.exists():
         raise TripletkitError(f"triplet table {str(p)!r} does not exist; check the path")
-    schema = read_parquet_schema(p, "triplet table")
+    files = parquet_files(p) if p.is_dir() else [p]  # a folder: the parts of a cluster run, in order
+    if not files:
+        raise TripletkitError(f"folder {str(p)!r} holds no .parquet files; give a triplet table or its folder of parts")
+    schema = read_parquet_schema(files[0], "triplet table")
     missing = [c for c in _ID_COLUMNS if c not in schema.names]
     if missing:
         raise TripletkitError(
             f"triplet table {str(p)!r} has no column {missing[0]!r}; it needs anchor, positive and negative ids"
         )
-    table = read_parquet(p, "triplet table", columns=list(_ID_COLUMNS))
+    table = pa.concat_tables([read_parquet(f, "triplet table", columns=list(_ID_COLUMNS)) for f in files])
     out = {}
     kinds = set()
     for col in _ID_COLUMNS:
@@ -202,3 +210,49 @@ def read_triplets(path):
         raise TripletkitError(f"triplet table {str(p)!r} mixes integer and string ids across anchor, positive and "
                               "negative; all three hold ids of one embedding table")
     return out
+
+
+def iter_triplet_batches(triplets, table, batch_size, seed=0, *, table_options=None):
+    """Triplets in shuffled batches of row positions of the embedding table, for a training loop.
+
+    Every framework can gather its own tensors from row positions (``embeddings[anchor]``), so a
+    batch is three int64 arrays: the positions of each triplet's anchor, positive and negative in
+    the order of ``table`` (the training dump the triplets were mined from, or the dataset rows in
+    that order). Every triplet comes once per pass, in a seeded random order.
+
+    Parameters
+    ----------
+    triplets : str or Path
+        A triplet table (or the folder of parts of a cluster run). Only its id columns are read.
+    table : str, Path, EmbeddingTable or table object
+        The embedding table whose ids the triplets name (anything
+        :func:`tripletkit.tables.embeddings.as_table` accepts); ids missing from it are an error.
+    batch_size : int
+        Triplets per batch (the last batch may be smaller).
+    seed : int or numpy.random.Generator, default 0
+        The shuffle; the same seed gives the same batches.
+    table_options : dict, optional
+        Column names and ``drop_invalid`` for reading ``table``.
+
+    Yields
+    ------
+    anchor, positive, negative : ndarray of int64, shape (b,)
+
+    Examples
+    --------
+    >>> for anchor, positive, negative in iter_triplet_batches("triplets.parquet", "dump.parquet", 256):
+    ...     loss = train_step(features[anchor], features[positive], features[negative])  # doctest: +SKIP
+    """
+    from .._validate import whole_number
+    from .embeddings import as_table
+
+    batch_size = whole_number(batch_size, "batch_size", low=1)
+    rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(whole_number(seed, "seed"))
+    emb = as_table(table, **(table_options or {}))
+    ids = read_triplets(triplets)
+    name = str(triplets)
+    rows = [emb.positions(ids[col], what=f"{col} ids of triplet table {name!r}") for col in _ID_COLUMNS]
+    order = rng.permutation(rows[0].size)
+    for start in range(0, order.size, batch_size):
+        pick = order[start:start + batch_size]
+        yield tuple(r[pick] for r in rows)
