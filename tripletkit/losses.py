@@ -35,12 +35,14 @@ References
 
 from __future__ import annotations
 
+import os
 import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from ._errors import TripletkitError
+from ._threads import run_in_threads
 from ._validate import (as_codes, as_embeddings, check_choice, check_distance, check_flag, check_same_length,
                         margin_number, row_norms)
 from ._validate import DISTANCES as _DISTANCES
@@ -201,7 +203,9 @@ def pair_distance(a, b, distance="squared"):
 # -- the per-triplet path: chunks of rows, unit rows used as they are ---------------------------
 # Rows of one chunk of the per-triplet losses: the three input chunks (and the gradient's) stay
 # in the CPU cache between the passes over them.
-_CHUNK_BYTES = 1 << 19
+_CHUNK_BYTES = 1 << 21
+# From this many values per input, the chunks are shared out to the CPUs.
+_PARALLEL_CELLS = 1 << 22
 
 
 def _triplet_arrays(anchor, positive, negative):
@@ -257,6 +261,16 @@ def _chunks(n, dim):
     return [(s, min(n, s + step)) for s in range(0, n, step)]
 
 
+def _in_parts(part, n, dim):
+    """``part(None, ranges, stopped)`` over the chunks of n rows: the chunks of a large input are
+    shared out to the CPUs, whose threads run numpy's loops side by side (each chunk writes its own
+    rows of the outputs, so the results do not depend on the split)."""
+    chunks = _chunks(n, dim)
+    threads = min(os.cpu_count() or 1, len(chunks) // 8) if n * dim >= _PARALLEL_CELLS else 1
+    threads = max(1, threads)
+    run_in_threads(part, None, [chunks[i::threads] for i in range(threads)], threads)
+
+
 def unit_triplet_terms(a, p, q, distance, margin, soft):
     """``(cos_ap, cos_an, d_ap, d_an, loss, slope)`` of triplets of unit rows (float64 results; the
     cosines in the rows' float type). Inputs are trusted: what the public functions build on."""
@@ -301,11 +315,15 @@ def triplet_loss(anchor, positive, negative, margin=0.2, distance="squared", sof
     soft = check_flag(soft, "soft")
     anchor, positive, negative = _triplet_arrays(anchor, positive, negative)
     out = np.empty(anchor.shape[0])
-    for s, e in _chunks(*anchor.shape):
-        a = _unit_chunk(anchor[s:e], anchor, "anchor")[0]
-        p = _unit_chunk(positive[s:e], positive, "positive")[0]
-        q = _unit_chunk(negative[s:e], negative, "negative")[0]
-        out[s:e] = unit_triplet_terms(a, p, q, distance, margin, soft)[4]
+
+    def part(_, ranges, stopped):
+        for s, e in ranges:
+            a = _unit_chunk(anchor[s:e], anchor, "anchor")[0]
+            p = _unit_chunk(positive[s:e], positive, "positive")[0]
+            q = _unit_chunk(negative[s:e], negative, "negative")[0]
+            out[s:e] = unit_triplet_terms(a, p, q, distance, margin, soft)[4]
+
+    _in_parts(part, *anchor.shape)
     return out
 
 
@@ -353,18 +371,26 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
         scale = 1.0 / n
     losses = np.empty(n)
     grads = [np.empty_like(anchor), np.empty_like(positive), np.empty_like(negative)]
-    for s, e in _chunks(*anchor.shape):
-        a, norm_a = _unit_chunk(anchor[s:e], anchor, "anchor")
-        p, norm_p = _unit_chunk(positive[s:e], positive, "positive")
-        q, norm_n = _unit_chunk(negative[s:e], negative, "negative")
-        cos_ap, cos_an, d_ap, d_an, loss, slope = unit_triplet_terms(a, p, q, distance, margin, soft)
-        losses[s:e] = loss
-        # d loss / d cos, per triplet (the hinge's and soft margin's slope is d loss / d d_ap)
-        w_ap = _cosine_weights(cos_ap, distance, slope * scale)[1]
-        w_an = _cosine_weights(cos_an, distance, -slope * scale)[1]
-        _project(grads[0][s:e], (w_ap, p), (w_an, q), a, w_ap * cos_ap + w_an * cos_an, norm_a)
-        _project(grads[1][s:e], (w_ap, a), None, p, w_ap * cos_ap, norm_p)
-        _project(grads[2][s:e], (w_an, a), None, q, w_an * cos_an, norm_n)
+
+    def part(_, ranges, stopped):
+        scratch = None
+        for s, e in ranges:
+            if scratch is None or scratch.shape[0] < e - s:
+                scratch = np.empty((e - s, anchor.shape[1]), anchor.dtype)
+            buffer = scratch[: e - s]
+            a, norm_a = _unit_chunk(anchor[s:e], anchor, "anchor")
+            p, norm_p = _unit_chunk(positive[s:e], positive, "positive")
+            q, norm_n = _unit_chunk(negative[s:e], negative, "negative")
+            cos_ap, cos_an, d_ap, d_an, loss, slope = unit_triplet_terms(a, p, q, distance, margin, soft)
+            losses[s:e] = loss
+            # d loss / d cos, per triplet (the hinge's and soft margin's slope is d loss / d d_ap)
+            w_ap = _cosine_weights(cos_ap, distance, slope * scale)[1]
+            w_an = _cosine_weights(cos_an, distance, -slope * scale)[1]
+            _project(grads[0][s:e], (w_ap, p), (w_an, q), a, w_ap * cos_ap + w_an * cos_an, norm_a, buffer)
+            _project(grads[1][s:e], (w_ap, a), None, p, w_ap * cos_ap, norm_p, buffer)
+            _project(grads[2][s:e], (w_an, a), None, q, w_an * cos_an, norm_n, buffer)
+
+    _in_parts(part, *anchor.shape)
     if reduction == "mean":
         if n == 0:
             _warn("triplet_loss_grad got zero triplets; the mean loss is undefined (NaN)")
@@ -378,14 +404,17 @@ def triplet_loss_grad(anchor, positive, negative, margin=0.2, distance="squared"
     return (value, *grads)
 
 
-def _project(out, first, second, unit, radial, norms):
+def _project(out, first, second, unit, radial, norms, scratch):
     """``out = (w1 v1 [+ w2 v2] - radial u) / ||x||``: a gradient on unit rows taken back through the
-    normalisation (its radial part dropped), in ``out``'s float type."""
+    normalisation (its radial part dropped), in ``out``'s float type; ``scratch`` is a buffer of
+    ``out``'s shape, so that no pass allocates."""
     dtype = out.dtype.type
     np.multiply(first[1], first[0].astype(dtype)[:, None], out=out)
     if second is not None:
-        out += second[1] * second[0].astype(dtype)[:, None]
-    out -= unit * radial.astype(dtype)[:, None]
+        np.multiply(second[1], second[0].astype(dtype)[:, None], out=scratch)
+        out += scratch
+    np.multiply(unit, radial.astype(dtype)[:, None], out=scratch)
+    out -= scratch
     if norms is not None:
         out /= norms.astype(dtype)[:, None]
 
