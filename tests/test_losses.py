@@ -532,3 +532,17 @@ def test_huge_finite_raw_outputs_give_the_loss_of_their_directions(rng):
     assert loss == pytest.approx(ref[0], rel=1e-12)
     # d(x/|x|)/dx scales with 1/|x|: the gradients shrink by the same factor
     np.testing.assert_allclose(g_a * big, ref[1], rtol=1e-9, atol=1e-12)
+
+
+def test_chunks_shared_out_to_threads_give_the_same_bits(rng, monkeypatch):
+    # the chunks of a large input run in threads; each writes its own rows, so the split changes
+    # nothing (compared with every chunk in this thread)
+    import tripletkit.losses as L
+
+    A, P, N = (rng.normal(size=(5000, 16)).astype(np.float32) for _ in range(3))
+    monkeypatch.setattr(L, "_CHUNK_BYTES", 4096)  # many chunks
+    monkeypatch.setattr(L, "_PARALLEL_CELLS", 1 << 40)
+    one = (triplet_loss(A, P, N), *triplet_loss_grad(A, P, N, reduction="none"))
+    monkeypatch.setattr(L, "_PARALLEL_CELLS", 1)
+    many = (triplet_loss(A, P, N), *triplet_loss_grad(A, P, N, reduction="none"))
+    assert all(np.array_equal(x, y) for x, y in zip(one, many))
