@@ -88,6 +88,20 @@ elif hold_at == "figure":
 else:
     raise SystemExit(f"unknown hold {hold_at!r}")
 
+if argv[0] == "--python":
+    # a Python caller: the verb is called as a function, and the caller catches the interrupt
+    import json
+
+    import tripletkit
+
+    verb, args, kwargs = json.loads(argv[1])
+    try:
+        getattr(tripletkit, verb)(*args, **kwargs)
+    except KeyboardInterrupt:
+        print("[caught] KeyboardInterrupt", file=sys.stderr, flush=True)
+        sys.exit(0)
+    sys.exit(3)  # the interrupt never arrived
+
 from tripletkit.cli import main
 
 sys.exit(main(argv))
@@ -300,3 +314,24 @@ def test_ctrl_c_while_the_command_starts_is_one_line(inputs, tmp_path, entry, af
     assert proc.returncode == 130, (proc.returncode, own[-5:])
     assert own == ["interrupted: no output was written"], own
     assert _listing(tmp_path) == [] and _listing(inputs) == before
+
+
+@pytest.mark.parametrize("verb, hold_at", [("mine", "row-group"), ("score", "figure"), ("sweep", "figure")])
+def test_a_python_caller_interrupted_mid_run_is_left_no_temporary_file(inputs, tmp_path, verb, hold_at):
+    # Ctrl-C in a Python session (a KeyboardInterrupt the caller catches): the verbs' outputs are
+    # published atomically, so nothing is left behind, as with the command line
+    import json
+
+    before = _listing(inputs)
+    call = {
+        "mine": ["mine", [str(inputs / "mine.parquet"), str(tmp_path / "triplets.parquet")], {"quiet": True}],
+        "score": ["score", [str(inputs / "score.parquet"), str(tmp_path / "report")], {"quiet": True}],
+        "sweep": ["sweep", [str(inputs / "sweep.toml"), str(tmp_path / "sweep")], {"quiet": True}],
+    }[verb]
+    proc, watcher = _start_held(hold_at, ["--python", json.dumps(call)], tmp_path)
+    assert [p for p in tmp_path.iterdir() if p.name.startswith(".")], _listing(tmp_path)  # mid-output
+    proc.send_signal(signal.SIGINT)
+    lines = watcher.finish()
+    assert proc.returncode == 0 and lines[-1] == "[caught] KeyboardInterrupt", lines[-5:]
+    assert _listing(tmp_path) == []
+    assert _listing(inputs) == before
