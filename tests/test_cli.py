@@ -139,3 +139,41 @@ def test_help_gives_one_default_per_option_and_lists_choices():
                 assert ", ".join(listed) in action.help
     assert seen > 50
     assert "(default: none)" in commands["mine"].format_help() and "(default: no cap)" not in commands["mine"].format_help()
+
+
+def test_errors_name_the_python_parameter_in_python_and_the_flag_on_the_command_line(tmp_path, capsys):
+    # One error, two audiences (issue 15): a Python caller reads the parameter it would pass,
+    # a shell user the flag. A NaN row is refused until invalid rows are dropped.
+    import tripletkit
+    from tripletkit import TripletkitError
+
+    x = np.eye(4, dtype=np.float32)
+    x[2] = np.nan
+    path = tmp_path / "nan.parquet"
+    write_table(path, np.arange(4), np.array([0, 0, 1, 1]), x)
+    with pytest.raises(TripletkitError, match=r"fix them or pass drop_invalid=True$"):
+        tripletkit.score(path)
+    assert main(["score", str(path), "--out", str(tmp_path / "rep")]) == 2
+    err = capsys.readouterr().err
+    assert err.endswith("fix them or pass --drop-invalid\n") and "drop_invalid" not in err
+    # an existing output: force=True in Python, --force on the command line
+    (tmp_path / "rep").mkdir()
+    with pytest.raises(TripletkitError, match=r"already exists; pass force=True to replace it$"):
+        tripletkit.score(path, tmp_path / "rep", table_options={"drop_invalid": True})
+    assert main(["score", str(path), "--out", str(tmp_path / "rep"), "--drop-invalid"]) == 2
+    assert capsys.readouterr().err.endswith("already exists; pass --force to replace it\n")
+
+
+def test_parameter_names_are_turned_into_the_commands_flags():
+    from tripletkit.cli import as_flags
+
+    parser = build_parser()
+    assert as_flags("pass index='exact' or run without scheduler=...", parser) == \
+        "pass --index exact or run without --scheduler"
+    assert as_flags("lower memory_mb=... or block_rows=..., or pass threads=0", parser) == \
+        "lower --memory-mb or --block-rows, or pass --threads 0"
+    # a path keeps its quotes (it may hold spaces); a word loses them
+    assert as_flags("out='my runs/t.parquet' is the input; choose another out=...", parser) == \
+        "--out 'my runs/t.parquet' is the input; choose another --out"
+    # names that are not options of any command are left as they are
+    assert as_flags("pair 3 is marked same=True", parser) == "pair 3 is marked same=True"

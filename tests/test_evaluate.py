@@ -320,7 +320,7 @@ def test_refuses_to_overwrite_and_force_replaces(tmp_path, table_path):
     out = tmp_path / "rep"
     out.mkdir()
     (out / "old.txt").write_text("keep me")
-    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+    with pytest.raises(TripletkitError, match="already exists; pass force=True"):
         score(table_path, out=out, config=FAST, quiet=True)
     assert (out / "old.txt").read_text() == "keep me"
     score(table_path, out=out, config=FAST, quiet=True, force=True)

@@ -214,7 +214,7 @@ def test_save_load_round_trip(tmp_path, rng, hidden):
     for k in head.params:
         assert back.params[k].tobytes() == head.params[k].tobytes()
     assert back.transform(X).tobytes() == head.transform(X).tobytes()
-    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+    with pytest.raises(TripletkitError, match="already exists; pass force=True"):
         head.save(path)
     head.save(path, force=True)
 

@@ -29,7 +29,7 @@ def test_failure_leaves_nothing(tmp_path, exc):
 def test_existing_output_needs_force(tmp_path):
     (tmp_path / "out").mkdir()
     (tmp_path / "out" / "old.txt").write_text("old")
-    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+    with pytest.raises(TripletkitError, match="already exists; pass force=True"):
         with atomic_path(tmp_path / "out", directory=True):
             pass
     with atomic_path(tmp_path / "out", directory=True, force=True) as tmp:
@@ -83,7 +83,7 @@ def test_output_that_appears_meanwhile_is_refused(tmp_path, directory, kind):
     target = tmp_path / "out"
     with pytest.raises(TripletkitError, match=r"^output '.*out' already exists: it appeared while this run was "
                                               r"writing \(another run with the same output\?\); nothing was "
-                                              r"written, pass --force"):
+                                              r"written, pass force=True"):
         with atomic_path(target, directory=directory) as tmp:
             (tmp / "mine.txt" if directory else tmp).write_text("ours")
             _appear(target, kind)  # after the start-of-run check, before publishing

@@ -246,7 +246,7 @@ def test_sites_differ_in_difficulty(shipped):
 def test_generate_refuses_to_overwrite_and_writes_nothing(tmp_path):
     existing = tmp_path / scenario.DEMO_FILES["heldout_features"]
     existing.write_bytes(b"keep me")
-    with pytest.raises(TripletkitError, match="already exists; pass --force") as err:
+    with pytest.raises(TripletkitError, match="already exists; pass force=True") as err:
         scenario.generate(tmp_path)
     assert "\n" not in str(err.value)
     assert sorted(p.name for p in tmp_path.iterdir()) == [existing.name]

@@ -176,7 +176,7 @@ def test_force_and_existing_output(tmp_path, checkpoint_tables):
     out = tmp_path / "out"
     out.mkdir()
     (out / "keep.txt").write_text("old")
-    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+    with pytest.raises(TripletkitError, match="already exists; pass force=True"):
         sweep(cfg, out, quiet=True)
     assert (out / "keep.txt").read_text() == "old"
     sweep(cfg, out, force=True, quiet=True)

@@ -56,20 +56,20 @@ def check_output(path, force=False, directory=None):
     if path.exists() or path.is_symlink():
         if directory is True and not path.is_dir():
             raise TripletkitError(f"output {str(path)!r} is an existing file but a folder is written here; "
-                                  "choose another --out")
+                                  "choose another out=...")
         if directory is False and path.is_dir():
             raise TripletkitError(f"output {str(path)!r} is an existing folder but a file is written here; "
                                   "give a file path (e.g. {}/out.parquet)".format(str(path)))
         if path.is_dir() and _inside(Path.cwd().resolve(), path.resolve()):
             # Replacing it would delete the folder we are working in (``--out .`` with --force).
             raise TripletkitError(f"output folder {str(path)!r} contains the current folder; refusing to replace "
-                                  "it, choose a new folder for --out")
+                                  "it, choose a new folder for out=...")
         if not force:
-            raise TripletkitError(f"output {str(path)!r} already exists; pass --force (force=True) to replace it")
+            raise TripletkitError(f"output {str(path)!r} already exists; pass force=True to replace it")
     return path
 
 
-def check_not_input(out, inputs, option="--out"):
+def check_not_input(out, inputs, option="out"):
     """Refuse an output that is one of ``inputs`` or a folder holding one of them.
 
     Replacing such an output (with ``force``) would destroy the input it is computed from, and
@@ -91,8 +91,8 @@ def check_not_input(out, inputs, option="--out"):
         src = Path(item).resolve()
         if _inside(src, target):
             what = "is" if src == target else "contains"
-            raise TripletkitError(f"{option} {str(out)!r} {what} the input {str(item)!r}; writing there would "
-                                  f"destroy the input, choose another {option}")
+            raise TripletkitError(f"{option}={str(out)!r} {what} the input {str(item)!r}; writing there would "
+                                  f"destroy the input, choose another {option}=...")
 
 
 def _umask():
@@ -211,7 +211,7 @@ def _remove(path):
 
 def _appeared(path):
     return TripletkitError(f"output {str(path)!r} already exists: it appeared while this run was writing (another "
-                           "run with the same output?); nothing was written, pass --force (force=True) to replace it")
+                           "run with the same output?); nothing was written, pass force=True to replace it")
 
 
 @contextlib.contextmanager

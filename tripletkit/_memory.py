@@ -160,7 +160,7 @@ def estimate_and_guard(what, bytes_needed, *, suggestion, available=None):
     bytes_needed : int
         Estimate of the job (e.g. :func:`tripletkit.mining.plan.mining_bytes`).
     suggestion : str
-        What the user can change, e.g. ``"lower --block-rows or use --index ivf"``.
+        What the user can change, e.g. ``"lower block_rows=... or use index='ivf'"``.
     available : int, optional
         Available bytes; by default :func:`available_bytes` (tests pass a fake value here or set
         ``TRIPLETKIT_MEMORY_LIMIT_MB``).

@@ -16,6 +16,7 @@ import dataclasses
 import json
 import math
 import os
+import re
 import signal
 import sys
 import typing
@@ -226,6 +227,37 @@ def _run(args):
 
 
 
+def _flags_of(parser):
+    """Python parameter name -> command-line flag, over every command's options."""
+    flags = {}
+    subparsers = [a for a in parser._actions if isinstance(a, argparse._SubParsersAction)]
+    for sub in subparsers[0].choices.values() if subparsers else ():
+        for action in sub._actions:
+            longs = [o for o in action.option_strings if o.startswith("--") and not o.startswith("--no-")]
+            if longs:
+                flags[longs[0][2:].replace("-", "_")] = (longs[0], action)
+    return flags
+
+
+def as_flags(message, parser):
+    """A message written for Python callers (``drop_invalid=True``, ``memory_mb=...``), with each
+    known parameter spelt as the command's flag (``--drop-invalid``, ``--memory-mb ...``)."""
+    flags = _flags_of(parser)
+
+    def flag(match):
+        name, value = match.group(1), match.group(2)
+        if name not in flags:
+            return match.group(0)
+        option, action = flags[name]
+        if re.fullmatch(r"'[A-Za-z][\w-]*'", value):
+            value = value[1:-1]  # a word: --index exact, not --index 'exact'; paths keep their quotes
+        if value in ("True", "False") and action.nargs == 0 or isinstance(action, argparse.BooleanOptionalAction):
+            return option if value != "False" else "--no-" + option[2:]
+        return option if value in ("...", "") else f"{option} {value}"
+
+    return re.sub(r"\b([a-z][a-z0-9_]*)=(True|False|\.\.\.|'[^']*'|[^\s,;)]*)", flag, message)
+
+
 def _text(obj, indent=0):
     lines = []
     pad = "  " * indent
@@ -296,7 +328,7 @@ def main(argv=None):
     except TripletkitError as exc:
         if args.debug:
             raise
-        print(f"error: {_one_line(exc)}", file=sys.stderr)
+        print(f"error: {as_flags(_one_line(exc), parser)}", file=sys.stderr)
         return 2
     except MemoryError:
         if args.debug:
@@ -329,6 +361,8 @@ def main(argv=None):
     # check reports like a linter: each problem that would make mine or score refuse the table
     # on its own line, and exit code 1
     problems = result.get("problems") if args.command == "check" and isinstance(result, dict) else None
+    if problems:
+        problems = result["problems"] = [as_flags(_one_line(problem), parser) for problem in problems]
     try:
         if getattr(args, "json", False):
             print(json.dumps(result, indent=2, sort_keys=False))

@@ -194,7 +194,7 @@ def _guard_memory(table, cfg):
                          genuine_pairs=int((sizes * (sizes - 1) // 2).sum()), identities=table.n_identities,
                          workers=cfg.threads or None)
     estimate_and_guard(f"scoring {table.n:,} x {table.dim} rows", max(0, need - table.n * table.dim * 4),
-                       suggestion="lower --memory-mb or --block-rows, or score a fixed --pairs list")
+                       suggestion="lower memory_mb=... or block_rows=..., or score a fixed pairs=... list")
 
 
 def score(source, out=None, *, config=None, force=False, quiet=False, table_options=None, compute=None,

@@ -350,13 +350,13 @@ def _no_cluster(*args, **kwargs):
 
 REFUSED = [
     ("mine", {"index": "hnsw"},
-     r"^index = hnsw is not available with a scheduler, only index = exact is; pass --index exact"),
+     r"^index = hnsw is not available with a scheduler, only index = exact is; pass index='exact'"),
     ("mine", {"index": "ivf"}, r"^index = ivf is not available with a scheduler"),
     # the demo table has 3,918 rows: auto resolves to ivf at or above exact_below
     ("mine", {"exact_below": 3918}, r"^index = auto picks ivf for 3,918 rows \(exact_below = 3,918\), and only index = "
-                                    r"exact runs with a scheduler; pass --index exact"),
+                                    r"exact runs with a scheduler; pass index='exact'"),
     ("mine", {"threads": 2}, r"^threads = 2 applies to a run in one process and is not used with a scheduler.*"
-                             r"pass --threads 0"),
+                             r"pass threads=0"),
     ("score", {"threads": 1}, r"^threads = 1 applies to a run in one process"),
 ]
 

@@ -165,7 +165,7 @@ def test_write_refuses_overwrite_and_is_atomic(tmp_path, rng):
     path = tmp_path / "out.parquet"
     write_table(path, np.arange(3), np.arange(3), rng.normal(size=(3, 2)))
     before = path.read_bytes()
-    with pytest.raises(TripletkitError, match="already exists; pass --force"):
+    with pytest.raises(TripletkitError, match="already exists; pass force=True"):
         write_table(path, np.arange(3), np.arange(3), rng.normal(size=(3, 2)))
     assert path.read_bytes() == before
     write_table(path, np.arange(4), np.arange(4), rng.normal(size=(4, 2)), force=True)
@@ -192,7 +192,7 @@ def test_check_summary(tmp_path, rng):
     # mine and score would refuse the NaN row: a problem, unless the rows are dropped
     assert len(out["problems"]) == 1
     assert re.match(r"table '.*t\.parquet' has 1 rows with NaN/Inf or zero norm \(first ids: 6\); mine and score "
-                    r"refuse them: fix them or pass --drop-invalid$", out["problems"][0])
+                    r"refuse them: fix them or pass drop_invalid=True$", out["problems"][0])
     assert check(tmp_path / "t.parquet", drop_invalid=True)["problems"] == []
 
 

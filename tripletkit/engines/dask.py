@@ -127,7 +127,7 @@ def cluster(compute):
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise TripletkitError(
             f"cannot reach the Dask scheduler {compute.scheduler!r} ({msg}); check the address "
-            "(tcp://host:8786) or use --scheduler local-cluster"
+            "(tcp://host:8786) or use scheduler='local-cluster'"
         ) from None
     with client:
         yield client
@@ -198,17 +198,17 @@ def refuse_unsupported(what, config, rows=None):
             if kind != "exact":
                 raise TripletkitError(
                     f"index = auto picks {kind} for {rows:,} rows (exact_below = {config.exact_below:,}), and only "
-                    "index = exact runs with a scheduler; pass --index exact or run without --scheduler"
+                    "index = exact runs with a scheduler; pass index='exact' or run without scheduler=..."
                 )
         elif kind not in ("auto", "exact"):
             raise TripletkitError(
-                f"index = {kind} is not available with a scheduler, only index = exact is; pass --index exact "
-                "or run without --scheduler"
+                f"index = {kind} is not available with a scheduler, only index = exact is; pass index='exact' "
+                "or run without scheduler=..."
             )
     if config.threads:
         raise TripletkitError(
             f"threads = {config.threads} applies to a run in one process and is not used with a scheduler, where "
-            "the workers share the work; pass --threads 0 (with a scheduler, --workers and --partitions size the run)"
+            "the workers share the work; pass threads=0 (with a scheduler, workers=... and partitions=... size the run)"
         )
 
 

@@ -252,4 +252,4 @@ def _guard_memory(table, cfg, return_triplets):
                         if return_triplets else 0)
     # The table is already loaded: its matrix is no longer part of what must still fit.
     estimate_and_guard(f"mining {n:,} x {d} rows", max(0, need - n * d * 4),
-                       suggestion="lower --memory-mb or --block-rows, or use --index ivf")
+                       suggestion="lower memory_mb=... or block_rows=..., or use index='ivf'")

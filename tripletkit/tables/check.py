@@ -56,7 +56,7 @@ def check(source, **options):
         where = f" {table.source!r}" if table.source else ""
         first = ", ".join(repr(v) for v in table.dropped_ids)
         problems.append(f"table{where} has {table.dropped} rows with NaN/Inf or zero norm (first ids: {first}); mine "
-                        "and score refuse them: fix them or pass --drop-invalid")
+                        "and score refuse them: fix them or pass drop_invalid=True")
     problems += pair_problems(table, "mining or scoring")
     return {
         "rows": table.n + table.dropped,

@@ -130,13 +130,13 @@ def group_values(col, name, where):
             or pa.types.is_boolean(t) or pa.types.is_floating(t)):
         raise TripletkitError(
             f"group column {name!r}{where} has type {t}; expected strings or integers (name another column "
-            "with --group-column)"
+            "with group_column=...)"
         )
     if col.null_count:
         first = int(np.flatnonzero(numpy_of(col.is_null()))[0])
         raise TripletkitError(
             f"group column {name!r}{where} has {col.null_count} null values (first at row {first}); fill them "
-            "(e.g. with 'unknown') or name another column with --group-column"
+            "(e.g. with 'unknown') or name another column with group_column=..."
         )
     values = numpy_of(col)
     if pa.types.is_floating(t) and np.isnan(values).any():

@@ -110,7 +110,7 @@ class EmbeddingTable:
             if col not in names:
                 raise TripletkitError(
                     f"{role} column {col!r} is missing{where} (columns: {', '.join(names) or 'none'}); "
-                    f"name it with --{role}-column"
+                    f"name it with {role}_column=..."
                 )
         if table.num_rows == 0:
             raise TripletkitError(f"table{where} has no rows; is it the right file?")
@@ -189,7 +189,7 @@ class EmbeddingTable:
                 if bad_zero.any():
                     parts.append(f"{int(bad_zero.sum())} zero-norm rows (first ids: {first_ids(ids, bad_zero)})")
                 raise TripletkitError(
-                    f"embeddings{where} have " + " and ".join(parts) + "; fix them or pass --drop-invalid"
+                    f"embeddings{where} have " + " and ".join(parts) + "; fix them or pass drop_invalid=True"
                 )
             keep = ~bad
             dropped = int(bad.sum())
@@ -394,7 +394,7 @@ def arrow_table(obj):
     return None
 
 
-def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
+def pair_problems(table, what, *, genuine=True, impostor=True, hint="is label_column=... the identity column?"):
     """The reasons (one line each) why ``table`` has no genuine or no impostor pairs at all.
 
     Parameters are those of :func:`require_pairs`; an empty list means the pairs are there.
@@ -415,7 +415,7 @@ def pair_problems(table, what, *, genuine=True, impostor=True, hint="is --label-
     return problems
 
 
-def require_pairs(table, what, *, genuine=True, impostor=True, hint="is --label-column the identity column?"):
+def require_pairs(table, what, *, genuine=True, impostor=True, hint="is label_column=... the identity column?"):
     """Raise when a table has no genuine pairs or no impostor pairs at all.
 
     The Python functions treat such tables as legal but degenerate (a warning and nulls), so a
