@@ -13,7 +13,9 @@
 - :func:`regime_candidates`, :func:`all_pairs`, :func:`chosen_negatives` and
   :func:`check_every_triplet`: the brute force of mining, sharing nothing with the miner;
 - :func:`identity_clusters`: rows in blocks of one identity around its centre (sweeps);
-- :func:`check_image`: a PNG file that holds a drawing (reports).
+- :func:`check_image`: a PNG file that holds a drawing (reports);
+- :func:`unit64`, :func:`unit_distance`, :func:`triplet_term` and :func:`central_difference`: the
+  slow, obvious twins of the losses (one triplet at a time, finite differences).
 """
 
 import math
@@ -245,3 +247,29 @@ def check_every_triplet(table, summary, margin, distance):
     key = np.stack([a, p, n, tr["regime"]], axis=1)
     assert np.unique(key, axis=0).shape[0] == key.shape[0]
     return D
+
+
+def unit64(x):
+    x = np.asarray(x, dtype=np.float64)
+    return x / np.linalg.norm(x, axis=1, keepdims=True)
+
+
+def unit_distance(u, v, distance):
+    sq = float(np.sum((u - v) ** 2))
+    return sq if distance == "squared" else math.sqrt(sq)
+
+
+def triplet_term(d_ap, d_an, margin, soft):
+    if soft:
+        return math.log1p(math.exp(d_ap - d_an))
+    return max(0.0, d_ap - d_an + margin)
+
+
+def central_difference(f, X, eps=1e-6):
+    g = np.zeros_like(X)
+    for idx in np.ndindex(X.shape):
+        up, down = X.copy(), X.copy()
+        up[idx] += eps
+        down[idx] -= eps
+        g[idx] = (f(up) - f(down)) / (2 * eps)
+    return g

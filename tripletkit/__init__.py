@@ -21,7 +21,7 @@ __version__ = "0.1.0"
 _LAZY = {
     "check": "tables.check", "EmbeddingTable": "tables.embeddings", "read_table": "tables.embeddings",
     "write_table": "tables.embeddings", "loss": "triplet_scores", "triplet_loss": "losses", "triplet_loss_grad": "losses",
-    "batch_all_loss": "losses", "batch_hard_loss": "losses", "mine": "mining", "REGIMES": "mining",
+    "batch_all_loss": "batch_losses", "batch_hard_loss": "batch_losses", "mine": "mining", "REGIMES": "mining",
     "score": "evaluate", "sweep": "sweeps", "demo": "scenario", "fit_head": "head", "ProjectionHead": "head",
     "load_config": "config", "iter_triplet_batches": "tables.triplets",
 }

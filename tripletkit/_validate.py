@@ -312,3 +312,15 @@ def check_confidence(confidence):
 
 
 # -- checks of reports and sweeps (added by the report room) ------------------------------------
+
+
+def raw_unit_rows(x, name):
+    """Validate raw vectors and return them as float64 unit rows plus their norms.
+
+    Shapes, finiteness and zero norms are checked by the shared helper (which works in the
+    package's float32 embedding dtype); the arithmetic then uses float64 copies of the input.
+    """
+    as_embeddings(x, name, normalise=True)
+    x64 = np.asarray(x, dtype=np.float64)
+    norms = row_norms(x64)  # no overflow for rows of huge finite values
+    return x64 / norms[:, None], norms

@@ -18,13 +18,8 @@ from sklearn.metrics.pairwise import (
 )
 from sklearn.preprocessing import normalize
 
-from tripletkit.losses import (
-    batch_all_loss,
-    batch_hard_loss,
-    pair_distance,
-    triplet_loss,
-    triplet_loss_grad,
-)
+from tripletkit.batch_losses import batch_all_loss, batch_hard_loss
+from tripletkit.losses import pair_distance, triplet_loss, triplet_loss_grad
 from tripletkit.mining.regimes import regime_of
 
 FACENET_MARGIN = 0.2  # Schroff et al., FaceNet, CVPR 2015: "the margin alpha is set to 0.2"
